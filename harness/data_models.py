@@ -1,0 +1,75 @@
+"""Data models: how inputs x and the teacher's inputs are drawn.
+
+A data model is a pair of pure functions over an explicit per-seed parameter pytree
+(for instance the feature matrix F of a latent model):
+
+* ``init(key) -> params``: draw the seed's fixed instance (nothing for i.i.d. inputs);
+* ``sample(params, key, n) -> (x, c)``: draw ``n`` fresh samples, ``x`` of shape
+  ``[n, input_dim]`` fed to the student and ``c`` of shape ``[n, teacher_dim]`` fed to
+  the teacher (``c = x`` for i.i.d. inputs, the latent variables otherwise);
+* ``order_parameters(params, w, wt) -> (Q, R, T)`` with the notes' definitions
+  (section 2), in the dtype of the weights given.
+
+Models are built from a resolved scenario by :func:`build_data_model`; new kinds
+register a builder in :data:`BUILDERS`.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+
+from harness.scenario import Scenario
+
+Array = jax.Array
+
+
+class DataModel(NamedTuple):
+    """A data model as pure functions (see the module docstring)."""
+
+    kind: str
+    input_dim: int
+    teacher_dim: int
+    init: Callable[[Array], Any]
+    sample: Callable[[Any, Array, int], tuple[Array, Array]]
+    order_parameters: Callable[[Any, Array, Array], tuple[Array, Array, Array]]
+
+
+def gaussian_model(input_dim: int, dtype: Any) -> DataModel:
+    """i.i.d. standard Gaussian inputs; the teacher acts on x itself (Omega = Phi = I)."""
+
+    def init(key: Array) -> tuple[()]:
+        del key
+        return ()
+
+    def sample(params: Any, key: Array, n: int) -> tuple[Array, Array]:
+        del params
+        x = jax.random.normal(key, (n, input_dim), dtype=dtype)
+        return x, x
+
+    def order_parameters(params: Any, w: Array, wt: Array) -> tuple[Array, Array, Array]:
+        del params
+        n = w.shape[-1]
+        return w @ w.T / n, w @ wt.T / n, wt @ wt.T / n
+
+    return DataModel("gaussian", input_dim, input_dim, init, sample, order_parameters)
+
+
+def _build_gaussian(scenario: Scenario, dtype: Any) -> DataModel:
+    return gaussian_model(scenario["data"]["input_dim"], dtype)
+
+
+BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {"gaussian": _build_gaussian}
+
+
+def build_data_model(scenario: Scenario, dtype: Any) -> DataModel:
+    """The data model a resolved scenario names, drawing in ``dtype``."""
+    kind = scenario["data"]["kind"]
+    builder_key = "python" if kind.startswith("python:") else kind
+    try:
+        builder = BUILDERS[builder_key]
+    except KeyError:
+        raise ValueError(f"data kind {kind!r} has no builder; known: {', '.join(BUILDERS)}") from None
+    return builder(scenario, dtype)

@@ -1,0 +1,138 @@
+"""One experiment: simulate a scenario's ensemble and pair it with its theory.
+
+This is the orchestration layer between the pure pieces: it compiles the simulator
+once, steps it from one evaluation time to the next, records observations, computes
+the simulation's overlap error from its own order parameters, asks the theory for
+predictions from the very same initial conditions, and returns paired
+:class:`~harness.trajectories.Trajectories` with timings.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from typing import Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from harness import iid_theory, simulation
+from harness.paired_theory import InitialState, initial_state, predict
+from harness.scenario import Scenario
+from harness.trajectories import Trajectories, observable_names, stack_observables
+
+ProgressFn = Callable[[int, int], None]
+
+
+class SimulationResult(NamedTuple):
+    seeds: np.ndarray  # [S]
+    steps: np.ndarray  # [E]
+    t: np.ndarray  # [E]
+    values: np.ndarray  # [S, E, O], NaN from the time a seed diverged
+    diverged_at: np.ndarray  # [S] time of divergence, NaN if never
+    compile_s: float
+    simulation_s: float
+
+
+class ExperimentResult(NamedTuple):
+    trajectories: Trajectories
+    diverged_at: np.ndarray  # [S]
+    timings: dict[str, float]
+
+
+def simulate(scenario: Scenario, *, progress: ProgressFn | None = None) -> SimulationResult:
+    """Train every seed's student and record observables at the evaluation times."""
+    sim = simulation.make_simulator(scenario)
+    seeds = np.arange(scenario["run"]["seeds"])
+    steps = simulation.evaluation_steps(scenario)
+    t = steps / scenario["data"]["input_dim"]
+
+    started = time.perf_counter()
+    instance, state = simulation.init_ensemble(sim, seeds)
+    target0 = jnp.asarray(0, dtype=state.step.dtype)
+    advance = simulation.make_advance(sim).lower(instance, state, target0).compile()
+    observe = simulation.make_observe(sim).lower(instance, state).compile()
+    jax.block_until_ready(instance)
+    compile_s = time.perf_counter() - started
+
+    started = time.perf_counter()
+    records = []
+    for step in steps:
+        state = advance(instance, state, jnp.asarray(step, dtype=state.step.dtype))
+        records.append(jax.device_get(observe(instance, state)))
+        if progress is not None:
+            progress(int(step), int(steps[-1]))
+    simulation_s = time.perf_counter() - started
+
+    stacked = jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)  # [S, E, ...]
+    dyn = iid_theory.dynamics_of(scenario)
+    teacher_v = np.broadcast_to(
+        np.asarray(scenario["teacher"]["second_layer"], np.float64), stacked.v.shape[:2] + (scenario["teacher"]["hidden"],)
+    )
+    ops = iid_theory.OrderParameters(stacked.Q, stacked.R, stacked.T, stacked.v)
+    with np.errstate(invalid="ignore"):
+        overlap = np.asarray(iid_theory.overlap_error(dyn, ops, teacher_v))
+    trained = scenario["student"]["train_second_layer"]
+    values = stack_observables(stacked.test_error, overlap, stacked.Q, stacked.R, stacked.T, stacked.v if trained else None)
+
+    # A seed is diverged from the first evaluation at which a weight is not finite (or
+    # a measured value overflowed); it is NaN from then on and leaves every average.
+    bad = ~stacked.finite | ~np.all(np.isfinite(values), axis=-1)
+    first_bad = np.where(bad.any(axis=1), bad.argmax(axis=1), len(steps))
+    diverged_at = np.where(first_bad < len(steps), t[np.minimum(first_bad, len(t) - 1)], np.nan)
+    mask = np.arange(len(steps))[None, :] >= first_bad[:, None]
+    values[mask] = np.nan
+    if np.any(np.isfinite(diverged_at)):
+        count = int(np.sum(np.isfinite(diverged_at)))
+        warnings.warn(
+            f"{count} of {len(seeds)} seeds diverged (weights became non-finite; "
+            "learning rate too large?); they are left out of every average from then on",
+            RuntimeWarning,
+            stacklevel=2,
+        )
+    return SimulationResult(seeds, steps, t, values, diverged_at, compile_s, simulation_s)
+
+
+def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarray, float]:
+    """Solve the theory alone from the initial conditions a run would draw.
+
+    Returns ``(t, start, values [S, E, O], theory_s)``.
+    """
+    sim = simulation.make_simulator(scenario)
+    seeds = np.arange(scenario["run"]["seeds"])
+    t = simulation.evaluation_steps(scenario) / scenario["data"]["input_dim"]
+    start = initial_state(sim, seeds)
+    started = time.perf_counter()
+    prediction = predict(scenario, start, t)
+    return t, start, prediction.values, time.perf_counter() - started
+
+
+def run_experiment(scenario: Scenario, *, progress: ProgressFn | None = None) -> ExperimentResult:
+    """Simulation and paired theory of a resolved scenario."""
+    simulated = simulate(scenario, progress=progress)
+    sim = simulation.make_simulator(scenario)
+    start = initial_state(sim, simulated.seeds)
+    started = time.perf_counter()
+    prediction = predict(scenario, start, simulated.t)
+    theory_s = time.perf_counter() - started
+    trajectories = Trajectories(
+        simulated.seeds,
+        simulated.t,
+        _observables(scenario),
+        simulated.values,
+        prediction.values,
+        prediction.paired,
+    )
+    timings = {
+        "simulation_s": simulated.simulation_s,
+        "theory_s": theory_s,
+        "compile_s": simulated.compile_s,
+    }
+    return ExperimentResult(trajectories, simulated.diverged_at, timings)
+
+
+def _observables(scenario: Scenario) -> list[str]:
+    return observable_names(
+        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+    )

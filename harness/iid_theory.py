@@ -1,0 +1,155 @@
+"""The order-parameter ODEs for i.i.d. Gaussian inputs (theory notes, section 3).
+
+State y = (Q [K, K], R [K, M], v [K]); T and the teacher's second layer are constants.
+With u = (lambda, nu) ~ N(0, Sigma), Sigma = [[Q, R], [R^T, T]], and
+a = (v_1..K, -vt_1..M), Delta = sum_c a_c g_c(u_c):
+
+  H[b, k] = E[u_b g'(lambda_k) Delta]            = sum_c a_c I3(k, b, c)
+  J[k, l] = E[g'(lambda_k) g'(lambda_l) Delta^2] = sum_cd a_c a_d I4(k, l, c, d) + sigma^2 J0[k, l]
+  dR_km/dt = -eta v_k H[K+m, k]
+  dQ_kl/dt = -eta v_k H[l, k] - eta v_l H[k, l] + eta^2 v_k v_l J[k, l]
+  dv_k/dt  = -eta_v sum_c a_c I2(k, c)                     (second layer trained only)
+
+The system is integrated with diffrax (Tsit5, an adaptive 5th-order explicit Runge-Kutta
+pair, with a PID step-size controller at the scenario's rtol/atol), saved at the
+evaluation times, one solve per seed, vmapped over seeds, in float64.
+"""
+
+from __future__ import annotations
+
+from typing import NamedTuple
+
+import diffrax
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from harness.gaussian_averages import gaussian_averages, generalisation_error
+from harness.scenario import Scenario
+
+Array = jax.Array
+
+
+class OrderParameters(NamedTuple):
+    """Order parameters of one seed, or of many with a leading seed (and time) axis."""
+
+    Q: Array  # [..., K, K]
+    R: Array  # [..., K, M]
+    T: Array  # [..., M, M]
+    v: Array  # [..., K]
+
+
+class Dynamics(NamedTuple):
+    """Static settings of the ODE right-hand side."""
+
+    K: int
+    student: str
+    teacher: str
+    learning_rate: float
+    second_layer_learning_rate: float
+    train_second_layer: bool
+    noise_std: float
+    second_order: bool = True  # False drops the eta^2 term: a deliberately wrong theory
+
+
+def dynamics_of(scenario: Scenario, *, second_order: bool = True) -> Dynamics:
+    return Dynamics(
+        K=scenario["student"]["hidden"],
+        student=scenario["student"]["activation"],
+        teacher=scenario["teacher"]["activation"],
+        learning_rate=scenario["sgd"]["learning_rate"],
+        second_layer_learning_rate=scenario["sgd"]["second_layer_learning_rate"],
+        train_second_layer=scenario["student"]["train_second_layer"],
+        noise_std=scenario["teacher"]["noise_std"],
+        second_order=second_order,
+    )
+
+
+def covariance(Q: Array, R: Array, T: Array) -> Array:
+    """Sigma = [[Q, R], [R^T, T]], the covariance of (lambda, nu) (notes, section 2)."""
+    return jnp.block([[Q, R], [jnp.swapaxes(R, -1, -2), T]])
+
+
+def error_signal_moments(dyn: Dynamics, cov: Array, a: Array) -> tuple[Array, Array, Array]:
+    """(H [P, K], J [K, K], E[g(lambda_k) Delta] [K]) at covariance ``cov``."""
+    avg = gaussian_averages(cov, dyn.K, dyn.student, dyn.teacher)
+    h = jnp.einsum("kbc,c->bk", avg.I3, a)
+    j = jnp.einsum("klcd,c,d->kl", avg.I4, a, a) + dyn.noise_std**2 * avg.J0
+    g_delta = avg.I2[: dyn.K, :] @ a
+    return h, j, g_delta
+
+
+def vector_field(dyn: Dynamics, state: tuple[Array, Array, Array], T: Array, teacher_v: Array):
+    """d(Q, R, v)/dt of notes section 3 for one seed."""
+    Q, R, v = state
+    K = dyn.K
+    eta = dyn.learning_rate
+    a = jnp.concatenate([v, -teacher_v])
+    h, j, g_delta = error_signal_moments(dyn, covariance(Q, R, T), a)
+    dR = -eta * v[:, None] * h[K:, :].T
+    drift = v[:, None] * h[:K, :].T  # drift[k, l] = v_k H[l, k]
+    dQ = -eta * (drift + drift.T)
+    if dyn.second_order:
+        dQ = dQ + eta**2 * jnp.outer(v, v) * j
+    dv = -dyn.second_layer_learning_rate * g_delta if dyn.train_second_layer else jnp.zeros_like(v)
+    return dQ, dR, dv
+
+
+def solve(
+    dyn: Dynamics,
+    initial: OrderParameters,
+    teacher_v: Array,
+    times: np.ndarray,
+    *,
+    rtol: float,
+    atol: float,
+    max_steps: int = 1_000_000,
+) -> OrderParameters:
+    """Integrate every seed's ODE from its own initial order parameters.
+
+    ``initial`` and ``teacher_v`` carry a leading seed axis; the result has shape
+    ``[seeds, times, ...]``. Float64 throughout.
+    """
+    ts = jnp.asarray(times, jnp.float64)
+
+    def one(Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
+        term = diffrax.ODETerm(lambda t, y, args: vector_field(dyn, y, T, vt))
+        solution = diffrax.diffeqsolve(
+            term,
+            diffrax.Tsit5(),
+            t0=ts[0],
+            t1=ts[-1],
+            dt0=None,
+            y0=(Q0, R0, v0),
+            saveat=diffrax.SaveAt(ts=ts),
+            stepsize_controller=diffrax.PIDController(rtol=rtol, atol=atol),
+            max_steps=max_steps,
+            throw=False,
+        )
+        Q, R, v = solution.ys
+        ok = solution.result == diffrax.RESULTS.successful
+        nan = jnp.where(ok, 0.0, jnp.nan)  # a failed solve must not pass as a result
+        return Q + nan, R + nan, jnp.broadcast_to(T, (len(times),) + T.shape), v + nan
+
+    f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
+    Q, R, T, v = jax.jit(jax.vmap(one))(
+        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
+    )
+    return OrderParameters(Q, R, T, v)
+
+
+def overlap_error(dyn: Dynamics, ops: OrderParameters, teacher_v: Array) -> Array:
+    """eps_g from order parameters via the Gaussian formula (notes, section 2).
+
+    Works for any leading axes (seeds, times); ``teacher_v`` has the leading axes of
+    ``ops.v`` and a trailing M axis.
+    """
+
+    def one(Q: Array, R: Array, T: Array, v: Array, vt: Array) -> Array:
+        a = jnp.concatenate([v, -vt])
+        return generalisation_error(covariance(Q, R, T), a, dyn.K, dyn.student, dyn.teacher)
+
+    for _ in range(ops.Q.ndim - 2):
+        one = jax.vmap(one)
+    f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
+    return jax.jit(one)(f64(ops.Q), f64(ops.R), f64(ops.T), f64(ops.v), f64(teacher_v))

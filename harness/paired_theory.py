@@ -1,0 +1,128 @@
+"""Theory predictions started from each seed's own initial conditions.
+
+The simulation draws each seed's teacher and initial student; :func:`initial_state`
+turns those weights into the exact initial order parameters, computed in float64, and
+:func:`predict` hands them to the theory the scenario names (``theory.source``). Every
+theory returns values in the :mod:`harness.trajectories` layout ``[S, E, O]``, NaN for
+observables it does not predict.
+
+Theory sources register in :data:`SOURCES` by prefix (``builtin``, and later
+``python:`` and ``file:``); built-in theories register per data kind in
+:data:`BUILTIN_THEORIES`.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, NamedTuple
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from harness import iid_theory
+from harness.scenario import Scenario
+from harness.trajectories import observable_names, stack_observables
+
+Array = Any
+
+
+class InitialState(NamedTuple):
+    """Everything a theory may start from, with a leading seed axis (float64 arrays)."""
+
+    seeds: np.ndarray  # [S] seed indices
+    order_parameters: iid_theory.OrderParameters  # Q [S,K,K], R [S,K,M], T [S,M,M], v [S,K]
+    teacher_v: np.ndarray  # [S, M]
+    teacher_w: np.ndarray  # [S, M, D]
+    student_w: np.ndarray  # [S, K, N]
+    data_params: Any  # the data model's per-seed parameters (e.g. F for latent models)
+
+
+class Prediction(NamedTuple):
+    values: np.ndarray  # [S, E, O] in observable_names order, NaN where not predicted
+    paired: bool  # False: one mean curve repeated for every seed
+
+
+def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
+    """Draw the seeds' initial weights exactly as the simulation does; overlaps in float64."""
+    from harness.simulation import draw_initial_weights
+
+    teacher_w, teacher_v, student_w, student_v, data_params = draw_initial_weights(sim, seed_indices)
+    w64 = jnp.asarray(student_w, jnp.float64)
+    wt64 = jnp.asarray(teacher_w, jnp.float64)
+    Q, R, T = [], [], []
+    order_parameters = sim.model.order_parameters
+    for s in range(len(seed_indices)):
+        params_s = _index(data_params, s)
+        q, r, t = order_parameters(params_s, w64[s], wt64[s])
+        Q.append(q), R.append(r), T.append(t)
+    ops = iid_theory.OrderParameters(
+        np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
+    )
+    return InitialState(
+        np.asarray(seed_indices), ops, np.asarray(teacher_v, np.float64),
+        np.asarray(wt64), np.asarray(w64), data_params,
+    )
+
+
+def _index(tree: Any, s: int) -> Any:
+    return jax.tree_util.tree_map(lambda a: a[s], tree)
+
+
+def values_from_order_parameters(
+    scenario: Scenario, ops: iid_theory.OrderParameters, teacher_v: np.ndarray
+) -> np.ndarray:
+    """Theory observables from order-parameter trajectories ``[S, E, ...]``.
+
+    The theory's ``test_error`` is its predicted eps_g, and so is its ``overlap_error``.
+    """
+    dyn = iid_theory.dynamics_of(scenario)
+    e = ops.Q.shape[1]
+    vt = np.broadcast_to(teacher_v[:, None, :], (teacher_v.shape[0], e, teacher_v.shape[1]))
+    eps = np.asarray(iid_theory.overlap_error(dyn, ops, vt))
+    trained = scenario["student"]["train_second_layer"]
+    return stack_observables(eps, eps, ops.Q, ops.R, ops.T, ops.v if trained else None)
+
+
+def builtin_iid(scenario: Scenario, start: InitialState, times: np.ndarray, **options: Any) -> Prediction:
+    """Notes section 3, one solve per seed from its own initial order parameters."""
+    dyn = iid_theory.dynamics_of(scenario, **options)
+    ops = iid_theory.solve(
+        dyn, start.order_parameters, start.teacher_v, times,
+        rtol=scenario["theory"]["rtol"], atol=scenario["theory"]["atol"],
+    )
+    ops = iid_theory.OrderParameters(*(np.asarray(x) for x in ops))
+    return Prediction(values_from_order_parameters(scenario, ops, start.teacher_v), paired=True)
+
+
+TheoryFn = Callable[..., Prediction]
+
+BUILTIN_THEORIES: dict[str, TheoryFn] = {"gaussian": builtin_iid}
+
+
+def _builtin(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
+    kind = scenario["data"]["kind"]
+    if kind not in BUILTIN_THEORIES:
+        raise ValueError(
+            f"theory.source = 'builtin' has no theory for data.kind = {kind!r}; "
+            f"built-in theories exist for: {', '.join(BUILTIN_THEORIES)}"
+        )
+    return BUILTIN_THEORIES[kind](scenario, start, times)
+
+
+def _no_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
+    s = len(start.seeds)
+    k, m = scenario["student"]["hidden"], scenario["teacher"]["hidden"]
+    o = len(observable_names(k, m, scenario["student"]["train_second_layer"]))
+    return Prediction(np.full((s, len(times), o), np.nan), paired=True)
+
+
+SOURCES: dict[str, TheoryFn] = {"builtin": _builtin, "none": _no_theory}
+
+
+def predict(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
+    """Ask the scenario's theory source for predictions at ``times``."""
+    source = scenario["theory"]["source"]
+    prefix = source.split(":", 1)[0] if ":" in source else source
+    if prefix not in SOURCES:
+        raise ValueError(f"theory.source {source!r} is not available; known: {', '.join(SOURCES)}")
+    return SOURCES[prefix](scenario, start, times)

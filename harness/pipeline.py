@@ -1,0 +1,144 @@
+"""From a resolved scenario to a stored run: experiment, comparison, results store.
+
+:func:`run_and_store` is what ``harness run`` (and every sweep point) does;
+:func:`theory_and_store` is ``harness theory``. Both return a :class:`StoredRun`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+import sys
+from importlib import metadata
+from pathlib import Path
+from typing import Any, NamedTuple
+
+import jax
+import numpy as np
+import pandas as pd
+
+from harness import comparison, scenario as scenario_lib
+from harness.experiment import ProgressFn, run_experiment, theory_only
+from harness.results_store import append_index_row, is_complete_run, write_run_folder
+from harness.trajectories import Trajectories, observable_names
+
+PACKAGES = ("harness", "numpy", "jax", "jaxlib", "optax", "diffrax", "equinox", "pandas", "pyarrow", "scipy")
+
+
+class StoredRun(NamedTuple):
+    run_id: str
+    folder: Path
+    skipped: bool  # True: an identical complete run already existed
+    metrics: pd.DataFrame | None
+    manifest: dict[str, Any] | None
+
+
+def package_versions() -> dict[str, str]:
+    versions = {}
+    for name in PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions
+
+
+def base_manifest(scenario: scenario_lib.Scenario, run_id: str, started: _dt.datetime) -> dict[str, Any]:
+    device = jax.devices()[0]
+    return {
+        "run_id": run_id,
+        "started": started.isoformat(timespec="seconds"),
+        "command": sys.argv,
+        "packages": package_versions(),
+        "python": platform.python_version(),
+        "machine": {"platform": platform.platform(), "processor": platform.machine()},
+        "jax_backend": jax.default_backend(),
+        "jax_device": f"{device.platform}:{device.device_kind}",
+        "dtype": scenario["run"]["dtype"],
+        "seeds": scenario["run"]["seeds"],
+    }
+
+
+def index_row(run_id: str, scenario: scenario_lib.Scenario, summary: pd.DataFrame, metric_table: pd.DataFrame,
+              kind: str = "run") -> dict[str, Any]:
+    """The run's row in ``runs.parquet``: id, flattened scenario, test_error metrics."""
+    row: dict[str, Any] = {"run_id": run_id, "kind": kind}
+    row.update(scenario_lib.flatten(scenario))
+    test = metric_table[metric_table["observable"] == "test_error"]
+    if not test.empty:
+        for column in comparison.METRIC_COLUMNS[1:]:
+            row[f"test_error.{column}"] = float(test.iloc[0][column])
+    final = summary[summary["observable"] == "test_error"].sort_values("t").iloc[-1]
+    row["final_test_error"] = float(final["sim_mean"])
+    row["final_theory_error"] = float(final["theory_mean"])
+    return row
+
+
+def run_and_store(
+    scenario: scenario_lib.Scenario,
+    out_dir: str | Path,
+    *,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+    extra_manifest: dict[str, Any] | None = None,
+) -> StoredRun:
+    """Simulate, pair with theory, compare, and write ``out_dir/<run_id>/`` atomically."""
+    run_id = scenario_lib.run_id(scenario)
+    folder = Path(out_dir) / run_id
+    if is_complete_run(folder) and not force:
+        return StoredRun(run_id, folder, True, None, None)
+    started = _dt.datetime.now(_dt.timezone.utc)
+    result = run_experiment(scenario, progress=progress)
+    traj = result.trajectories
+    summary = comparison.summarise(traj)
+    metric_table = comparison.metrics(summary)
+    diverged = [
+        {"seed": int(s), "t": float(t)} for s, t in zip(traj.seeds, result.diverged_at) if np.isfinite(t)
+    ]
+    manifest = base_manifest(scenario, run_id, started)
+    manifest.update(
+        {
+            "kind": "run",
+            "diverged_seeds": diverged,
+            "diverged_count": len(diverged),
+            "paired": traj.paired,
+            "evaluations": len(traj.t),
+            "timings": result.timings,
+        }
+    )
+    manifest.update(extra_manifest or {})
+    write_run_folder(
+        out_dir, run_id,
+        scenario_toml=scenario_lib.to_toml(scenario), manifest=manifest,
+        trajectories=traj.to_frame(), summary=summary, metrics=metric_table, replace=force,
+    )
+    append_index_row(out_dir, index_row(run_id, scenario, summary, metric_table))
+    return StoredRun(run_id, folder, False, metric_table, manifest)
+
+
+def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, force: bool = False) -> StoredRun:
+    """Solve the theory alone and write the same tables (``sim`` columns are NaN)."""
+    run_id = scenario_lib.run_id(scenario) + "-theory"
+    folder = Path(out_dir) / run_id
+    if is_complete_run(folder) and not force:
+        return StoredRun(run_id, folder, True, None, None)
+    started = _dt.datetime.now(_dt.timezone.utc)
+    t, start, values, theory_s = theory_only(scenario)
+    names = observable_names(
+        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+    )
+    traj = Trajectories(start.seeds, t, names, np.full_like(values, np.nan), values)
+    summary = comparison.summarise(traj)
+    metric_table = comparison.metrics(summary)
+    manifest = base_manifest(scenario, run_id, started)
+    manifest.update(
+        {"kind": "theory", "diverged_seeds": [], "diverged_count": 0, "paired": True, "evaluations": len(t),
+         "timings": {"simulation_s": 0.0, "theory_s": theory_s, "compile_s": 0.0}}
+    )
+    write_run_folder(
+        out_dir, run_id,
+        scenario_toml=scenario_lib.to_toml(scenario), manifest=manifest,
+        trajectories=traj.to_frame(), summary=summary, metrics=metric_table, replace=force,
+    )
+    append_index_row(out_dir, index_row(run_id, scenario, summary, metric_table, kind="theory"))
+    return StoredRun(run_id, folder, False, metric_table, manifest)
