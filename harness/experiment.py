@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import time
 import warnings
+from pathlib import Path
 from typing import Callable, NamedTuple
 
 import jax
@@ -18,8 +19,9 @@ import jax.numpy as jnp
 import numpy as np
 
 from harness import iid_theory, simulation
+from harness.checkpoint import Checkpointer
 from harness.paired_theory import InitialState, initial_state, predict
-from harness.scenario import Scenario
+from harness.scenario import Scenario, run_id
 from harness.trajectories import Trajectories, observable_names, stack_observables
 
 ProgressFn = Callable[[int, int], None]
@@ -33,16 +35,25 @@ class SimulationResult(NamedTuple):
     diverged_at: np.ndarray  # [S] time of divergence, NaN if never
     compile_s: float
     simulation_s: float
+    resumed_from_step: int = 0  # > 0: the run continued from a checkpoint taken at this step
 
 
 class ExperimentResult(NamedTuple):
     trajectories: Trajectories
     diverged_at: np.ndarray  # [S]
     timings: dict[str, float]
+    resumed_from_step: int = 0
 
 
-def simulate(scenario: Scenario, *, progress: ProgressFn | None = None) -> SimulationResult:
-    """Train every seed's student and record observables at the evaluation times."""
+def simulate(
+    scenario: Scenario, *, progress: ProgressFn | None = None, checkpoint_dir: str | Path | None = None
+) -> SimulationResult:
+    """Train every seed's student and record observables at the evaluation times.
+
+    With ``checkpoint_dir``, the state is saved there every ``run.checkpoint_minutes``
+    and a matching checkpoint found there is resumed from (:mod:`harness.checkpoint`);
+    the results are bit-identical either way.
+    """
     sim = simulation.make_simulator(scenario)
     seeds = np.arange(scenario["run"]["seeds"])
     steps = simulation.evaluation_steps(scenario)
@@ -58,9 +69,21 @@ def simulate(scenario: Scenario, *, progress: ProgressFn | None = None) -> Simul
 
     started = time.perf_counter()
     records = []
-    for step in steps:
+    checkpointer, first, resumed_from_step = None, 0, 0
+    if checkpoint_dir is not None:
+        checkpointer = Checkpointer(
+            checkpoint_dir, 60.0 * scenario["run"]["checkpoint_minutes"], run_id(scenario), steps, instance.train_key
+        )
+        restored = checkpointer.restore(state, observe.out_info)
+        if restored is not None:
+            state, records, first = restored.state, restored.records, restored.evaluations_done
+            resumed_from_step = int(steps[first - 1]) if first > 0 else 0
+    for index in range(first, len(steps)):
+        step = steps[index]
         state = advance(instance, state, jnp.asarray(step, dtype=state.step.dtype))
         records.append(jax.device_get(observe(instance, state)))
+        if checkpointer is not None and index + 1 < len(steps):
+            checkpointer.maybe_save(index + 1, state, records)
         if progress is not None:
             progress(int(step), int(steps[-1]))
     simulation_s = time.perf_counter() - started
@@ -78,7 +101,10 @@ def simulate(scenario: Scenario, *, progress: ProgressFn | None = None) -> Simul
 
     # A seed is diverged from the first evaluation at which a weight is not finite (or
     # a measured value overflowed); it is NaN from then on and leaves every average.
-    bad = ~stacked.finite | ~np.all(np.isfinite(values), axis=-1)
+    # Observables undefined from the start for every seed (R, T and overlap_error of a user
+    # data model that gives labels, without a teacher: harness.user_data) are no divergence.
+    defined = np.any(np.isfinite(values[:, 0, :]), axis=0)
+    bad = ~stacked.finite | ~np.all(np.isfinite(values[..., defined]), axis=-1)
     first_bad = np.where(bad.any(axis=1), bad.argmax(axis=1), len(steps))
     diverged_at = np.where(first_bad < len(steps), t[np.minimum(first_bad, len(t) - 1)], np.nan)
     mask = np.arange(len(steps))[None, :] >= first_bad[:, None]
@@ -91,7 +117,7 @@ def simulate(scenario: Scenario, *, progress: ProgressFn | None = None) -> Simul
             RuntimeWarning,
             stacklevel=2,
         )
-    return SimulationResult(seeds, steps, t, values, diverged_at, compile_s, simulation_s)
+    return SimulationResult(seeds, steps, t, values, diverged_at, compile_s, simulation_s, resumed_from_step)
 
 
 def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarray, float]:
@@ -108,9 +134,11 @@ def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarra
     return t, start, prediction.values, time.perf_counter() - started
 
 
-def run_experiment(scenario: Scenario, *, progress: ProgressFn | None = None) -> ExperimentResult:
-    """Simulation and paired theory of a resolved scenario."""
-    simulated = simulate(scenario, progress=progress)
+def run_experiment(
+    scenario: Scenario, *, progress: ProgressFn | None = None, checkpoint_dir: str | Path | None = None
+) -> ExperimentResult:
+    """Simulation and paired theory of a resolved scenario (checkpointed in ``checkpoint_dir``)."""
+    simulated = simulate(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
     sim = simulation.make_simulator(scenario)
     start = initial_state(sim, simulated.seeds)
     started = time.perf_counter()
@@ -129,7 +157,7 @@ def run_experiment(scenario: Scenario, *, progress: ProgressFn | None = None) ->
         "theory_s": theory_s,
         "compile_s": simulated.compile_s,
     }
-    return ExperimentResult(trajectories, simulated.diverged_at, timings)
+    return ExperimentResult(trajectories, simulated.diverged_at, timings, simulated.resumed_from_step)
 
 
 def _observables(scenario: Scenario) -> list[str]:

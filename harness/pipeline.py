@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from harness import comparison, scenario as scenario_lib
+from harness.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.experiment import ProgressFn, run_experiment, theory_only
 from harness.results_store import append_index_row, is_complete_run, write_run_folder
 from harness.trajectories import Trajectories, observable_names
@@ -74,21 +75,34 @@ def index_row(run_id: str, scenario: scenario_lib.Scenario, summary: pd.DataFram
     return row
 
 
-def run_and_store(
+class ComputedRun(NamedTuple):
+    """A run computed but not yet stored: everything :func:`store_run` writes (picklable)."""
+
+    run_id: str
+    scenario_toml: str
+    manifest: dict[str, Any]
+    trajectories: pd.DataFrame
+    summary: pd.DataFrame
+    metrics: pd.DataFrame
+    index_row: dict[str, Any]
+
+
+def compute_run(
     scenario: scenario_lib.Scenario,
-    out_dir: str | Path,
     *,
-    force: bool = False,
     progress: ProgressFn | None = None,
     extra_manifest: dict[str, Any] | None = None,
-) -> StoredRun:
-    """Simulate, pair with theory, compare, and write ``out_dir/<run_id>/`` atomically."""
+    checkpoint_dir: str | Path | None = None,
+) -> ComputedRun:
+    """Simulate, pair with theory and compare, writing nothing but optional checkpoints.
+
+    This is the half of :func:`run_and_store` that a sweep runs on a worker; the client
+    then calls :func:`store_run`. With ``checkpoint_dir`` the simulation saves its state
+    there every ``run.checkpoint_minutes`` and resumes from a checkpoint it finds.
+    """
     run_id = scenario_lib.run_id(scenario)
-    folder = Path(out_dir) / run_id
-    if is_complete_run(folder) and not force:
-        return StoredRun(run_id, folder, True, None, None)
     started = _dt.datetime.now(_dt.timezone.utc)
-    result = run_experiment(scenario, progress=progress)
+    result = run_experiment(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
     traj = result.trajectories
     summary = comparison.summarise(traj)
     metric_table = comparison.metrics(summary)
@@ -106,14 +120,45 @@ def run_and_store(
             "timings": result.timings,
         }
     )
+    if result.resumed_from_step:
+        manifest["resumed_from_step"] = result.resumed_from_step
     manifest.update(extra_manifest or {})
-    write_run_folder(
-        out_dir, run_id,
-        scenario_toml=scenario_lib.to_toml(scenario), manifest=manifest,
-        trajectories=traj.to_frame(), summary=summary, metrics=metric_table, replace=force,
+    return ComputedRun(
+        run_id, scenario_lib.to_toml(scenario), manifest, traj.to_frame(), summary, metric_table,
+        index_row(run_id, scenario, summary, metric_table),
     )
-    append_index_row(out_dir, index_row(run_id, scenario, summary, metric_table))
-    return StoredRun(run_id, folder, False, metric_table, manifest)
+
+
+def store_run(computed: ComputedRun, out_dir: str | Path, *, force: bool = False) -> StoredRun:
+    """Write a computed run's folder and index row atomically, then drop its checkpoint."""
+    folder = write_run_folder(
+        out_dir, computed.run_id,
+        scenario_toml=computed.scenario_toml, manifest=computed.manifest,
+        trajectories=computed.trajectories, summary=computed.summary, metrics=computed.metrics, replace=force,
+    )
+    append_index_row(out_dir, computed.index_row)
+    discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
+    return StoredRun(computed.run_id, folder, False, computed.metrics, computed.manifest)
+
+
+def run_and_store(
+    scenario: scenario_lib.Scenario,
+    out_dir: str | Path,
+    *,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+    extra_manifest: dict[str, Any] | None = None,
+) -> StoredRun:
+    """Simulate, pair with theory, compare, and write ``out_dir/<run_id>/`` atomically."""
+    run_id = scenario_lib.run_id(scenario)
+    folder = Path(out_dir) / run_id
+    if is_complete_run(folder) and not force:
+        return StoredRun(run_id, folder, True, None, None)
+    checkpoints = checkpoint_folder(out_dir, run_id)
+    if force:
+        discard_checkpoint(checkpoints)  # redo from the start, as asked
+    computed = compute_run(scenario, progress=progress, extra_manifest=extra_manifest, checkpoint_dir=checkpoints)
+    return store_run(computed, out_dir, force=force)
 
 
 def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, force: bool = False) -> StoredRun:

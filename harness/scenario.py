@@ -131,6 +131,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "seed": Key("int", 0, "base random seed", _nonnegative_int),
         "shared_teacher": Key("bool", False, "one teacher for all seeds", None),
         "block_steps": Key("int", 0, "SGD steps per drawn block of samples (0: automatic)", _nonnegative_int),
+        "checkpoint_minutes": Key(
+            "float", 5.0, "minutes between saved checkpoints of a run's state (0: none)", _nonnegative_finite
+        ),
+        "common_random_numbers": Key(
+            "bool", True, "sweep points share weights, teachers and input streams (false: each point its own)", None
+        ),
     },
     "theory": {
         "source": Key("str", "builtin", "where theory comes from", _theory_source),
