@@ -1,0 +1,332 @@
+"""Figures are read back from the matplotlib objects: axes, labels, scales and line counts.
+
+The run, scaling and sweep folders are synthetic (tests/conftest_figures.py) but written in
+the briefed on-disk format, so these tests exercise the same readers real results go through.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import matplotlib.pyplot as plt
+import numpy as np
+import pandas as pd
+import pytest
+from conftest_figures import write_run_folder, write_scaling_folder, write_sweep_folder
+from matplotlib.collections import LineCollection
+from matplotlib.image import AxesImage
+from matplotlib.lines import Line2D
+
+from harness import figures
+from harness.figures_cli import add_figure_commands
+
+
+@pytest.fixture(autouse=True)
+def _close_figures():
+    yield
+    plt.close("all")
+
+
+def _plain_lines(ax) -> list[Line2D]:
+    """Data lines without markers (theory lines, simulation means), not error-bar glyphs."""
+    return [line for line in ax.lines if line.get_marker() in ("None", None, "") and len(line.get_xdata()) > 2]
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="harness")
+    add_figure_commands(parser.add_subparsers(dest="command", required=True))
+    return parser
+
+
+def _run_cli(*argv: str) -> int:
+    args = _parser().parse_args(list(argv))
+    return args.handler(args)
+
+
+# ---------------------------------------------------------------------------------------
+# Learning curve
+# ---------------------------------------------------------------------------------------
+
+
+def test_learning_curve_axes_labels_and_log_time(tmp_path):
+    run = write_run_folder(tmp_path, "run-a", gaussian_equivalence_gap=0.2)
+    summary = figures.read_summary(run)
+    fig = figures.plot_learning_curve(summary)
+    curve_ax, residual_ax = fig.axes
+    assert curve_ax.get_xscale() == "log" and residual_ax.get_xscale() == "log"
+    assert curve_ax.get_shared_x_axes().joined(curve_ax, residual_ax)
+    assert curve_ax.get_ylabel() == r"$\varepsilon_g$"
+    assert residual_ax.get_xlabel() == r"$t = \mathrm{steps}/N$"
+    assert residual_ax.get_ylabel() == "$z$"
+    # t = 0 is dropped on the log axis (documented choice): no plotted point at t <= 0.
+    for ax in fig.axes:
+        for line in _plain_lines(ax):
+            assert np.all(np.asarray(line.get_xdata(), dtype=float) > 0)
+    # simulation mean, overlap error (differs here), theory.
+    assert len(_plain_lines(curve_ax)) == 3
+    labels = [text.get_text() for text in curve_ax.get_legend().get_texts()]
+    assert labels == [r"simulation $\pm$ SEM", r"$\varepsilon_g(Q,R,T)$ of simulation", "theory"]
+    # The theory line is the stored theory mean at t > 0, unchanged.
+    test = summary[(summary["observable"] == "test_error") & (summary["t"] > 0)].sort_values("t")
+    theory_line = _plain_lines(curve_ax)[-1]
+    np.testing.assert_allclose(theory_line.get_ydata(), test["theory_mean"].to_numpy())
+    np.testing.assert_allclose(theory_line.get_xdata(), test["t"].to_numpy())
+
+
+def test_residual_panel_has_two_sigma_band_and_z(tmp_path):
+    run = write_run_folder(tmp_path, "run-b", theory_bias=0.3)
+    summary = figures.read_summary(run)
+    fig = figures.plot_learning_curve(summary, show_overlap=False, divergence_t=30.0)
+    residual_ax = fig.axes[1]
+    bands = [patch.get_path().get_extents(patch.get_patch_transform()) for patch in residual_ax.patches]
+    assert any(np.isclose(box.y0, -2.0) and np.isclose(box.y1, 2.0) for box in bands)
+    z_line = next(line for line in _plain_lines(residual_ax) if line.get_label() == r"$\varepsilon_g$")
+    test = summary[(summary["observable"] == "test_error") & (summary["t"] > 0)].sort_values("t")
+    np.testing.assert_allclose(z_line.get_ydata(), test["z"].to_numpy())
+    # zero line, z line, marker of where the theory departs (vertical line at t = 30).
+    vertical = [line for line in residual_ax.lines if np.allclose(line.get_xdata(), 30.0)]
+    assert len(vertical) == 1
+    assert len(fig.axes[0].lines) == 2  # no overlap curve when switched off
+    low, high = residual_ax.get_ylim()
+    assert low <= -2.0 and high >= 2.0
+
+
+def test_overlap_curve_drawn_only_when_it_differs(tmp_path):
+    run = write_run_folder(tmp_path, "run-c")
+    summary = figures.read_summary(run)
+    same = summary.copy()
+    overlap_rows = same["observable"] == "overlap_error"
+    test_rows = same["observable"] == "test_error"
+    same.loc[overlap_rows, ["sim_mean", "sim_sem", "z"]] = same.loc[test_rows, ["sim_mean", "sim_sem", "z"]].to_numpy()
+    assert not figures.overlap_differs(same)
+    assert figures.overlap_differs(summary)
+    assert len(_plain_lines(figures.plot_learning_curve(same).axes[0])) == 2
+    assert len(_plain_lines(figures.plot_learning_curve(summary).axes[0])) == 3
+
+
+def test_per_seed_curves_come_in_pairs(tmp_path):
+    run = write_run_folder(tmp_path, "run-d", seeds=5)
+    summary = figures.read_summary(run)
+    rows = figures.read_trajectories(run, ["test_error"])
+    assert set(rows["observable"]) == {"test_error"}
+    fig = figures.plot_learning_curve(summary, trajectories=rows, seeds_shown=3, show_overlap=False)
+    curve_ax = fig.axes[0]
+    # 3 seeds x (simulation + its theory) + mean + theory.
+    assert len(_plain_lines(curve_ax)) == 3 * 2 + 2
+    thin = [line for line in curve_ax.lines if line.get_linewidth() < 1.0]
+    assert len(thin) == 6
+    # Each seed's simulation and theory share one hue: that is the pairing made visible.
+    colours = [line.get_color() for line in thin]
+    assert colours[0::2] == colours[1::2]
+    assert len(set(colours[0::2])) == 3
+
+
+# ---------------------------------------------------------------------------------------
+# Order parameters
+# ---------------------------------------------------------------------------------------
+
+
+def test_order_parameter_entries_keep_one_triangle_of_symmetric_families():
+    names = ["Q[0,0]", "Q[0,1]", "Q[1,0]", "Q[1,1]", "R[0,0]", "R[1,0]", "T[0,0]", "v[1]", "test_error"]
+    grouped = figures.order_parameter_entries(names)
+    assert list(grouped) == ["Q", "R", "T", "v"]
+    assert [name for name, _ in grouped["Q"]] == ["Q[0,0]", "Q[0,1]", "Q[1,1]"]
+    assert [label for _, label in grouped["R"]] == ["$R_{00}$", "$R_{10}$"]
+    assert figures.order_parameter_entries(["Q[3,12]"])["Q"][0][1] == "$Q_{3,12}$"
+
+
+def test_order_parameter_grid_markers_and_lines(tmp_path):
+    run = write_run_folder(tmp_path, "run-e", students=3, teachers=2, train_second_layer=True)
+    fig = figures.plot_order_parameters(figures.read_summary(run))
+    visible = [ax for ax in fig.axes if ax.get_visible()]
+    assert [ax.get_ylabel() for ax in visible] == ["$Q_{ij}$", "$R_{in}$", "$T_{nm}$", "$v_i$"]
+    expected_entries = {"$Q_{ij}$": 6, "$R_{in}$": 6, "$T_{nm}$": 3, "$v_i$": 3}
+    for ax in visible:
+        entries = expected_entries[ax.get_ylabel()]
+        assert ax.get_xscale() == "log"
+        assert len(_plain_lines(ax)) == entries  # one theory line per entry
+        assert len(ax.containers) == entries  # one error-bar set per entry
+        assert all(isinstance(c[2][0], LineCollection) for c in ax.containers)
+        assert len(ax.get_legend().get_texts()) == entries
+    assert visible[-1].get_xlabel() == r"$t = \mathrm{steps}/N$"
+
+
+def test_order_parameter_panels_without_v_and_with_many_entries(tmp_path):
+    run = write_run_folder(tmp_path, "run-f", students=4, teachers=3)
+    fig = figures.plot_order_parameters(figures.read_summary(run), max_legend=8)
+    visible = [ax for ax in fig.axes if ax.get_visible()]
+    assert [ax.get_ylabel() for ax in visible] == ["$Q_{ij}$", "$R_{in}$", "$T_{nm}$"]
+    # Q has 10 and R 12 entries: drawn without a per-entry legend.
+    assert visible[0].get_legend() is None and visible[1].get_legend() is None
+    assert len(_plain_lines(visible[1])) == 12
+
+
+# ---------------------------------------------------------------------------------------
+# Finite-size scaling and sweeps
+# ---------------------------------------------------------------------------------------
+
+
+def test_scaling_plot_is_log_log_with_fitted_law_and_verdict(tmp_path):
+    folder = write_scaling_folder(tmp_path, offset=2e-3)
+    verdict = figures.read_scaling(folder)
+    fig = figures.plot_scaling(verdict)
+    ax = fig.axes[0]
+    assert ax.get_xscale() == "log" and ax.get_yscale() == "log"
+    assert ax.get_xlabel() == "$N$"
+    assert "inconsistent" in ax.get_title()
+    law = next(line for line in _plain_lines(ax) if line.get_label().startswith("$a N^{-b}"))
+    n, gap = np.asarray(law.get_xdata()), np.asarray(law.get_ydata())
+    np.testing.assert_allclose(gap, verdict["amplitude"] * n ** -verdict["exponent"] + verdict["offset"])
+    band = [patch.get_path().get_extents(patch.get_patch_transform()) for patch in ax.patches]
+    c, dc = verdict["offset"], verdict["offset_err"]
+    assert any(np.isclose(box.y0, c - dc) and np.isclose(box.y1, c + dc) for box in band)
+    low, _ = ax.get_ylim()
+    assert low < c - dc  # the offset band is in view
+    assert len(ax.containers) == 1 and len(ax.containers[0][0].get_xdata()) == len(verdict["sizes"])
+
+
+def test_scaling_folder_missing_key_is_reported(tmp_path):
+    folder = write_scaling_folder(tmp_path)
+    content = json.loads((folder / "verdict.json").read_text())
+    del content["offset_err"]
+    (folder / "verdict.json").write_text(json.dumps(content))
+    with pytest.raises(figures.FigureInputError, match=r"verdict\.json: missing key\(s\) offset_err"):
+        figures.read_scaling(folder)
+
+
+def test_sweep_heat_map_over_two_keys(tmp_path):
+    folder = write_sweep_folder(tmp_path)
+    keys, runs = figures.read_sweep(folder)
+    fig = figures.plot_sweep(keys, runs, metric="max_abs_z")
+    ax = fig.axes[0]
+    images = [child for child in ax.get_children() if isinstance(child, AxesImage)]
+    assert len(images) == 1
+    data = images[0].get_array()
+    assert data.shape == (3, 4)  # hidden units (rows) x learning rates (columns)
+    assert ax.get_xlabel() == r"learning rate $\eta$" and ax.get_ylabel() == "$K$"
+    assert [t.get_text() for t in ax.get_xticklabels()] == ["0.1", "0.3", "1", "3"]
+    expected = runs.pivot_table(
+        index="student.hidden_units", columns="sgd.learning_rate", values="test_error.max_abs_z"
+    )
+    np.testing.assert_allclose(np.ma.filled(data, np.nan), expected.to_numpy())
+    colourbar_ax = fig.axes[1]
+    assert colourbar_ax.get_ylabel() == r"max $|z|$ of $\varepsilon_g$"
+
+
+def test_sweep_divergence_never_cells_are_masked(tmp_path):
+    folder = write_sweep_folder(tmp_path)
+    keys, runs = figures.read_sweep(folder)
+    fig = figures.plot_sweep(keys, runs, metric="divergence_t")
+    data = next(c for c in fig.axes[0].get_children() if isinstance(c, AxesImage)).get_array()
+    never = runs["test_error.divergence_t"].isna().sum()
+    assert int(np.ma.getmaskarray(data).sum()) == never > 0
+    assert sum(text.get_text() == "never" for text in fig.axes[0].texts) == never
+
+
+def test_sweep_curves_over_one_key(tmp_path):
+    folder = write_sweep_folder(tmp_path, "sweep_one", swept={"sgd.learning_rate": [0.1, 0.3, 1.0, 3.0, 10.0]})
+    keys, runs = figures.read_sweep(folder)
+    ax = figures.plot_sweep(keys, runs, metric="final_test_error").axes[0]
+    assert ax.get_xscale() == "log"  # two decades of learning rates
+    assert len(ax.lines) == 1 and len(ax.lines[0].get_xdata()) == 5
+    assert ax.get_ylabel() == r"final $\varepsilon_g$ (simulation)"
+    # One swept key chosen out of two: one curve per value of the other key.
+    keys, runs = figures.read_sweep(write_sweep_folder(tmp_path, "sweep_two"))
+    ax = figures.plot_sweep(keys, runs, axes_keys=["sgd.learning_rate"]).axes[0]
+    assert len(ax.lines) == 3
+    assert [t.get_text() for t in ax.get_legend().get_texts()] == ["$K$ = 2", "$K$ = 3", "$K$ = 4"]
+
+
+def test_sweep_rejects_unknown_metric_and_axes(tmp_path):
+    keys, runs = figures.read_sweep(write_sweep_folder(tmp_path))
+    with pytest.raises(figures.FigureInputError, match="--metric 'speed'"):
+        figures.plot_sweep(keys, runs, metric="speed")
+    with pytest.raises(figures.FigureInputError, match="--sweep-axes"):
+        figures.plot_sweep(keys, runs, axes_keys=["data.input_dim"])
+
+
+# ---------------------------------------------------------------------------------------
+# Folder kinds, writing files, command line
+# ---------------------------------------------------------------------------------------
+
+
+def test_folder_kind_from_files(tmp_path):
+    assert figures.folder_kind(write_run_folder(tmp_path, "run-g")) == "run"
+    assert figures.folder_kind(write_scaling_folder(tmp_path)) == "scaling"
+    assert figures.folder_kind(write_sweep_folder(tmp_path)) == "sweep"
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(figures.FigureInputError, match="not a result folder"):
+        figures.folder_kind(tmp_path / "empty")
+    broken = write_run_folder(tmp_path, "run-h")
+    (broken / "summary.parquet").unlink()
+    with pytest.raises(figures.FigureInputError, match=r"summary\.parquet: missing"):
+        figures.folder_kind(broken)
+
+
+def test_missing_summary_column_is_named(tmp_path):
+    run = write_run_folder(tmp_path, "run-i")
+    summary = pd.read_parquet(run / "summary.parquet").drop(columns=["sim_sem"])
+    summary.to_parquet(run / "summary.parquet")
+    with pytest.raises(figures.FigureInputError, match=r"summary\.parquet: missing column\(s\) sim_sem"):
+        figures.read_summary(run)
+
+
+def test_figure_command_writes_png_and_pdf_atomically(tmp_path, capsys):
+    run = write_run_folder(tmp_path, "run-j")
+    assert _run_cli("figure", str(run), "--format", "png,pdf", "--size", "double", "--per-seed") == 0
+    out = run / "figures"
+    names = sorted(path.name for path in out.iterdir())
+    assert names == [
+        "learning_curve.pdf",
+        "learning_curve.png",
+        "order_parameters.pdf",
+        "order_parameters.png",
+    ]  # and no temporary files left behind
+    assert (out / "learning_curve.pdf").read_bytes().startswith(b"%PDF")
+    from PIL import Image  # matplotlib depends on Pillow
+
+    width, _ = Image.open(out / "learning_curve.png").size
+    # "double" is a 7 in page width, drawn at 300 dpi: the layout fits inside, nothing is cropped.
+    assert abs(width - 7 * 300) <= 2
+    printed = capsys.readouterr().out.split()
+    assert str(out / "learning_curve.png") in printed
+
+
+def test_figures_regenerate_identically_from_tables(tmp_path):
+    run = write_run_folder(tmp_path, "run-k")
+    drawn = []
+    for name in ("first", "second"):
+        # Each drawing starts from the stored tables alone.
+        fig = figures.plot_learning_curve(figures.read_summary(run), size=figures.FigureSize(None, 2.0, 1.6))
+        (path,) = figures.save_figure(fig, tmp_path / name, ["png"])
+        drawn.append(path.read_bytes())
+    assert drawn[0] == drawn[1]
+
+
+def test_figure_command_on_scaling_and_sweep(tmp_path):
+    scaling = write_scaling_folder(tmp_path)
+    sweep = write_sweep_folder(tmp_path)
+    code = _run_cli(
+        "figure", str(scaling), str(sweep), "--format", "png", "--metric", "divergence_t", "--size", "3,2.5"
+    )
+    assert code == 0
+    assert (scaling / "figures" / "scaling.png").is_file()
+    assert (sweep / "figures" / "sweep_divergence_t.png").is_file()
+
+
+@pytest.mark.parametrize(
+    ("extra", "expected"),
+    [
+        ([], "not a result folder"),
+        (["--size", "huge"], "--size 'huge'"),
+        (["--format", "svg"], "--format 'svg'"),
+    ],
+)
+def test_figure_command_bad_input_one_line_exit_2(tmp_path, capsys, extra, expected):
+    target = tmp_path / "not-a-run"
+    target.mkdir()
+    assert _run_cli("figure", str(target), *extra) == 2
+    error = capsys.readouterr().err
+    assert error.count("\n") == 1 and expected in error
+    assert not (target / "figures").exists()
