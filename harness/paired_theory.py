@@ -20,6 +20,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from harness import iid_theory
+from harness.optimizers import warn_if_not_plain_sgd
 from harness.scenario import Scenario
 from harness.trajectories import observable_names, stack_observables
 
@@ -35,6 +36,9 @@ class InitialState(NamedTuple):
     teacher_w: np.ndarray  # [S, M, D]
     student_w: np.ndarray  # [S, K, N]
     data_params: Any  # the data model's per-seed parameters (e.g. F for latent models)
+    # Optional, for latent models: Omega's eigen-decomposition and the weights' projections on
+    # it (notes, section 4) when the data model provides them; None otherwise.
+    spectrum: Any = None
 
 
 class Prediction(NamedTuple):
@@ -58,9 +62,11 @@ def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
     ops = iid_theory.OrderParameters(
         np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
     )
+    spectra = sim.model.spectra
     return InitialState(
         np.asarray(seed_indices), ops, np.asarray(teacher_v, np.float64),
         np.asarray(wt64), np.asarray(w64), data_params,
+        None if spectra is None else spectra(data_params, np.asarray(w64), np.asarray(wt64)),
     )
 
 
@@ -101,6 +107,7 @@ BUILTIN_THEORIES: dict[str, TheoryFn] = {"gaussian": builtin_iid}
 
 def _builtin(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
     kind = scenario["data"]["kind"]
+    warn_if_not_plain_sgd(scenario)
     if kind not in BUILTIN_THEORIES:
         raise ValueError(
             f"theory.source = 'builtin' has no theory for data.kind = {kind!r}; "
@@ -116,7 +123,13 @@ def _no_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Pr
     return Prediction(np.full((s, len(times), o), np.nan), paired=True)
 
 
-SOURCES: dict[str, TheoryFn] = {"builtin": _builtin, "none": _no_theory}
+def _user_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
+    from harness.user_theory import predict_user  # lazily: user theories import this module
+
+    return predict_user(scenario, start, times)
+
+
+SOURCES: dict[str, TheoryFn] = {"builtin": _builtin, "none": _no_theory, "python": _user_theory, "file": _user_theory}
 
 
 def predict(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:

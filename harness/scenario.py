@@ -16,12 +16,13 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import os
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
-from harness.activations import NETWORK_ACTIVATIONS
+from harness.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
 from harness.errors import InputError
 
 Scenario = dict[str, dict[str, Any]]
@@ -76,11 +77,27 @@ def _finite_list(values: list[float]) -> str | None:
     return None if all(math.isfinite(v) for v in values) else "a list of finite numbers"
 
 
+def _unit_interval(value: float) -> str | None:
+    return None if 0.0 <= value < 1.0 else "a number in [0, 1)"
+
+
+def _positive_list(values: list[int]) -> str | None:
+    return None if all(v >= 1 for v in values) else "a list of integers >= 1"
+
+
+def _activation_names(values: list[str]) -> str | None:
+    return None if all(v in ACTIVATIONS for v in values) else "a list of names from " + ", ".join(ACTIVATIONS)
+
+
+def _at_least_thousand(value: int) -> str | None:
+    return None if value >= 1000 else "an integer >= 1000"
+
+
 def _at_least_two(value: int) -> str | None:
     return None if value >= 2 else "an integer >= 2"
 
 
-DATA_KINDS: tuple[str, ...] = ("gaussian",)
+DATA_KINDS: tuple[str, ...] = ("gaussian", "latent", "deep_latent")
 """Built-in data kinds; ``python:package.module:factory`` names a user data model."""
 
 
@@ -102,6 +119,14 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "data": {
         "kind": Key("str", "gaussian", "input distribution", _data_kind),
         "input_dim": Key("int", 500, "N, the input dimension", _positive),
+        # latent-variable kinds (harness.latent_models; theory notes, section 4)
+        "latent_dim": Key("int", 0, "D, latent dimension of latent kinds (0: input_dim // 2)", _nonnegative_int),
+        "feature_map": Key("str", "sign", "f in x = f(F^T c / sqrt(D)) - E f (latent kinds)", _one_of(*ACTIVATIONS)),
+        "layers": Key("int_list", [], "hidden widths of the deep_latent generator, latent side first", _positive_list),
+        "layer_activations": Key("str_list", [], "deep_latent: activation after each layer, len(layers) + 1 "
+                                 "names (empty: feature_map everywhere)", _activation_names),
+        "moment_samples": Key("int", 100000, "Monte Carlo samples for Omega and Phi (deep_latent, trained_latent)",
+                              _at_least_thousand),
     },
     "teacher": {
         "hidden": Key("int", 2, "M, teacher hidden units", _positive),
@@ -121,6 +146,14 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "learning_rate": Key("float", 0.5, "eta, first-layer learning rate", _positive_finite),
         "second_layer_learning_rate": Key("float", None, "eta_v (default: learning_rate)", _positive_finite),
         "time": Key("float", 300.0, "training time t = steps / input_dim", _positive_finite),
+        # Update rule and its settings (harness.optimizers); plain SGD is what the built-in theory describes.
+        "optimizer": Key("str", "sgd", "update rule", _one_of("sgd", "momentum", "adam")),
+        "momentum": Key("float", 0.9, "momentum beta (optimizer 'momentum')", _unit_interval),
+        "nesterov": Key("bool", False, "Nesterov momentum (optimizer 'momentum')", None),
+        "beta1": Key("float", 0.9, "first-moment decay (optimizer 'adam')", _unit_interval),
+        "beta2": Key("float", 0.999, "second-moment decay (optimizer 'adam')", _unit_interval),
+        "eps": Key("float", 1e-8, "denominator offset (optimizer 'adam')", _positive_finite),
+        "weight_decay": Key("float", 0.0, "kappa: L2 penalty (kappa/2)(sum_k Q_kk + |v|^2)", _nonnegative_finite),
     },
     "run": {
         "seeds": Key("int", 8, "number of independent seeds", _positive),
@@ -142,12 +175,37 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "source": Key("str", "builtin", "where theory comes from", _theory_source),
         "rtol": Key("float", 1e-6, "ODE solver relative tolerance", _positive_finite),
         "atol": Key("float", 1e-9, "ODE solver absolute tolerance", _positive_finite),
+        "limit": Key("str", "finite", "latent theory: exact finite-N equations or the thermodynamic limit",
+                     _one_of("finite", "infinite")),
+        "bins": Key("int", 200, "eigenvalue bins of the thermodynamic-limit latent theory", _at_least_two),
     },
 }
 
+
+def _check_user_sources(s: Scenario) -> None:
+    """User theories / data models are checked before any work (imported lazily: rarely needed)."""
+    if s["theory"]["source"].startswith(("python:", "file:")):
+        from harness.user_theory import check_theory_source
+
+        check_theory_source(s)
+    if s["data"]["kind"].startswith("python:"):
+        from harness.user_data import check_data_kind
+
+        check_data_kind(s)
+
+
 # Cross-key rules registered by other modules (latent data, optimizers, ...). Each takes
 # the resolved scenario and raises ScenarioError on a problem.
-EXTRA_CHECKS: list[Callable[[Scenario], None]] = []
+EXTRA_CHECKS: list[Callable[[Scenario], None]] = [_check_user_sources]
+
+
+def _check_latent_keys(s: Scenario) -> None:
+    from harness.latent_models import check_latent_keys  # lazily: it imports this module
+
+    check_latent_keys(s)
+
+
+EXTRA_CHECKS.append(_check_latent_keys)
 
 
 # ----------------------------------------------------------------------- resolution
@@ -277,6 +335,14 @@ def _check_cross_keys(s: Scenario) -> None:
                 f"scenario key '{role}.second_layer': must have {role}.hidden = {hidden} entries, "
                 f"got {len(layer)}"
             )
+    optimizer_keys = {"momentum": ("momentum", "nesterov"), "adam": ("beta1", "beta2", "eps")}
+    for owner, names in optimizer_keys.items():
+        for name in names:
+            if s["sgd"]["optimizer"] != owner and s["sgd"][name] != SCHEMA["sgd"][name].default:
+                raise ScenarioError(
+                    f"scenario key 'sgd.{name}': applies only with sgd.optimizer = {owner!r}, "
+                    f"got sgd.optimizer = {s['sgd']['optimizer']!r}"
+                )
 
 
 # ---------------------------------------------------------------------- file access
@@ -286,7 +352,21 @@ def load(path: str | Path | None = None, *, allow_sections: tuple[str, ...] = ()
     """Read and resolve a scenario file; ``None`` gives the embedded default scenario."""
     if path is None:
         return resolve({})
-    return resolve(read_table(path), allow_sections=allow_sections)
+    table = read_table(path)
+    _anchor_theory_file(table, Path(path).absolute().parent)
+    return resolve(table, allow_sections=allow_sections)
+
+
+def _anchor_theory_file(table: dict[str, Any], folder: Path) -> None:
+    """A relative ``theory.source = "file:PATH"`` is relative to the scenario file's folder.
+
+    It is made absolute here, so the resolved scenario (and its stored copy) names the
+    very file; scenarios built in code keep relative paths, read from the working directory.
+    """
+    theory = table.get("theory")
+    source = theory.get("source") if isinstance(theory, dict) else None
+    if isinstance(source, str) and source.startswith("file:") and not Path(source[5:]).is_absolute():
+        theory["source"] = "file:" + os.path.normpath(folder / source[5:])
 
 
 def read_table(path: str | Path) -> dict[str, Any]:

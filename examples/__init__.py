@@ -1,0 +1,1 @@
+"""Worked examples of user theories and user data models (see README.md)."""
