@@ -62,11 +62,9 @@ def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
     ops = iid_theory.OrderParameters(
         np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
     )
-    spectra = sim.model.spectra
     return InitialState(
         np.asarray(seed_indices), ops, np.asarray(teacher_v, np.float64),
         np.asarray(wt64), np.asarray(w64), data_params,
-        None if spectra is None else spectra(data_params, np.asarray(w64), np.asarray(wt64)),
     )
 
 
