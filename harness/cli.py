@@ -119,6 +119,7 @@ def _registrars() -> list[Callable]:
 
 COMMAND_MODULES: list[tuple[str, str]] = [
     ("harness.figures_cli", "add_figure_commands"),
+    ("harness.generator_cli", "add_generator_commands"),
     ("harness.sweep", "add_sweep_commands"),
 ]
 

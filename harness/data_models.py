@@ -35,6 +35,9 @@ class DataModel(NamedTuple):
     init: Callable[[Array], Any]
     sample: Callable[[Any, Array, int], tuple[Array, Array]]
     order_parameters: Callable[[Any, Array, Array], tuple[Array, Array, Array]]
+    # True: sample returns (x, y[:, None]), the labels themselves, and there is no teacher
+    # (user data models, harness.user_data); R and T are then NaN.
+    labels_given: bool = False
 
 
 def gaussian_model(input_dim: int, dtype: Any) -> DataModel:
@@ -61,7 +64,13 @@ def _build_gaussian(scenario: Scenario, dtype: Any) -> DataModel:
     return gaussian_model(scenario["data"]["input_dim"], dtype)
 
 
-BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {"gaussian": _build_gaussian}
+def _build_user(scenario: Scenario, dtype: Any) -> DataModel:
+    from harness.user_data import build_user_data_model  # lazily: it imports this module
+
+    return build_user_data_model(scenario, dtype)
+
+
+BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {"gaussian": _build_gaussian, "python": _build_user}
 
 
 def build_data_model(scenario: Scenario, dtype: Any) -> DataModel:

@@ -155,6 +155,13 @@ def teacher_output(scenario: Scenario, w: Array, v: Array, c: Array) -> Array:
     return g(nu) @ v
 
 
+def clean_labels(sim: Simulator, w: Array, v: Array, c: Array) -> Array:
+    """Noise-free labels of a batch: the teacher's output on c, or c itself when the data model gives labels."""
+    if sim.model.labels_given:
+        return c[..., 0]
+    return teacher_output(sim.scenario, w, v, c)
+
+
 def sample_loss(scenario: Scenario, params: dict[str, Array], x: Array, y: Array) -> Array:
     """The per-sample loss 1/2 (f(x) - y)^2 (notes, section 1)."""
     return 0.5 * (student_output(scenario, params, x) - y) ** 2
@@ -211,7 +218,7 @@ def init_ensemble(sim: Simulator, seed_indices: np.ndarray | None = None) -> tup
 
     def test_set(key: Array, tw: Array, tv: Array, params: Any) -> tuple[Array, Array]:
         x, c = sim.model.sample(params, _split_seed_key(s, key)["test"], test_samples)
-        return x, teacher_output(s, tw, tv, c)
+        return x, clean_labels(sim, tw, tv, c)
 
     keys = seed_keys(s, seed_indices)
     test_x, test_y = jax.jit(jax.vmap(test_set))(keys, teacher_w, teacher_v, data_params)
@@ -239,7 +246,7 @@ def draw_steps(sim: Simulator, instance_one: Instance, steps: Array) -> tuple[Ar
         return x[0], c[0], noise
 
     x, c, noise = jax.vmap(one)(steps)
-    y = teacher_output(s, instance_one.teacher_w, instance_one.teacher_v, c)
+    y = clean_labels(sim, instance_one.teacher_w, instance_one.teacher_v, c)
     return x, y + s["teacher"]["noise_std"] * noise
 
 
