@@ -218,6 +218,7 @@ def negative_elbo(params: Params, x: Array, key: Array) -> tuple[Array, tuple[Ar
 
     -ELBO = E_q[-log p(x|c)] + KL(q(c|x) || N(0, I)) (Kingma & Welling 2014, eq. 10), the KL of
     diagonal Gaussians in closed form (their appendix B), one reparameterised draw c = mu + s*eps.
+    (Equation and appendix numbers from memory.)
     """
     mean, log_var = encode(params, x)
     eps = jax.random.normal(key, mean.shape, dtype=mean.dtype)
