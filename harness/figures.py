@@ -75,9 +75,7 @@ THEORY_DASHES = (4.0, 1.6)
 # the comparison module's limit, so figures, page and tables give one verdict.
 AGREEMENT_MAX_Z = comparison.AGREEMENT_Z
 # Sequential map for heat maps: pale sand to deep blue, monotone in lightness.
-HEAT_MAP = LinearSegmentedColormap.from_list(
-    "harness_heat", ["#f7f1e1", "#e9c46a", "#d9731a", "#8a3b5c", "#1d3557"]
-)
+HEAT_MAP = LinearSegmentedColormap.from_list("harness_heat", ["#f7f1e1", "#e9c46a", "#d9731a", "#8a3b5c", "#1d3557"])
 MISSING_CELL = "#d8d8d8"
 
 # A journal column is about 3.4 in wide, a full page width about 7 in; the font stays at
@@ -192,9 +190,7 @@ def parse_size(text: str) -> FigureSize:
             f"--size {text!r}: expected 'single', 'double' or 'W,H' in inches (e.g. 3.4,2.8)"
         ) from None
     if not (0.5 <= width <= 40.0 and 0.5 <= height <= 40.0):
-        raise FigureInputError(
-            f"--size {text!r}: width and height must be between 0.5 and 40 inches"
-        )
+        raise FigureInputError(f"--size {text!r}: width and height must be between 0.5 and 40 inches")
     return FigureSize(preset=None, width_in=width, height_in=height)
 
 
@@ -203,9 +199,7 @@ def parse_formats(text: str) -> tuple[str, ...]:
     formats = tuple(dict.fromkeys(part.strip().lower() for part in text.split(",") if part.strip()))
     bad = [fmt for fmt in formats if fmt not in FORMATS]
     if not formats or bad:
-        raise FigureInputError(
-            f"--format {text!r}: expected a comma-separated list from {', '.join(FORMATS)}"
-        )
+        raise FigureInputError(f"--format {text!r}: expected a comma-separated list from {', '.join(FORMATS)}")
     return formats
 
 
@@ -240,9 +234,7 @@ def folder_kind(path: Path) -> str:
     """Return "run", "scaling" or "sweep" from the files present; raise FigureInputError otherwise."""
     path = Path(path)
     if not path.is_dir():
-        raise FigureInputError(
-            f"{path}: not a folder; expected a run, scaling or sweep result folder"
-        )
+        raise FigureInputError(f"{path}: not a folder; expected a run, scaling or sweep result folder")
     if (path / "verdict.json").is_file():
         return "scaling"
     if (path / "sweep.json").is_file():
@@ -270,9 +262,7 @@ def _read_parquet(path: Path, columns: Iterable[str], **kwargs: object) -> pd.Da
     except FileNotFoundError:
         raise FigureInputError(f"{path}: missing table") from None
     except Exception as error:  # pyarrow raises several types for unreadable files
-        raise FigureInputError(
-            f"{path}: not a readable Parquet table ({type(error).__name__})"
-        ) from None
+        raise FigureInputError(f"{path}: not a readable Parquet table ({type(error).__name__})") from None
     missing = [column for column in columns if column not in frame.columns]
     if missing:
         raise FigureInputError(f"{path}: missing column(s) {', '.join(missing)}")
@@ -307,9 +297,7 @@ def read_json(path: Path) -> dict:
     except FileNotFoundError:
         raise FigureInputError(f"{path}: missing") from None
     except json.JSONDecodeError as error:
-        raise FigureInputError(
-            f"{path}: not valid JSON ({error.msg} at line {error.lineno})"
-        ) from None
+        raise FigureInputError(f"{path}: not valid JSON ({error.msg} at line {error.lineno})") from None
     if not isinstance(content, dict):
         raise FigureInputError(f"{path}: expected a JSON object")
     return content
@@ -336,9 +324,7 @@ def overlap_differs(summary: pd.DataFrame, rtol: float = 1e-6) -> bool:
     overlap = _observable(summary, "overlap_error")
     if overlap.empty or len(overlap) != len(test):
         return not overlap.empty
-    return not np.allclose(
-        test["sim_mean"].to_numpy(), overlap["sim_mean"].to_numpy(), rtol=rtol, atol=0.0
-    )
+    return not np.allclose(test["sim_mean"].to_numpy(), overlap["sim_mean"].to_numpy(), rtol=rtol, atol=0.0)
 
 
 def plot_learning_curve(
@@ -384,9 +370,7 @@ def plot_learning_curve(
         curve_ax.plot(t, mean, color=SIM_COLOR, label=r"simulation $\pm$ SEM")
         if overlap is not None and not overlap.empty:
             o_t, o_mean, o_sem = (overlap[c].to_numpy() for c in ("t", "sim_mean", "sim_sem"))
-            curve_ax.fill_between(
-                o_t, o_mean - o_sem, o_mean + o_sem, color=OVERLAP_COLOR, alpha=0.18, linewidth=0
-            )
+            curve_ax.fill_between(o_t, o_mean - o_sem, o_mean + o_sem, color=OVERLAP_COLOR, alpha=0.18, linewidth=0)
             curve_ax.plot(
                 o_t,
                 o_mean,
@@ -414,9 +398,7 @@ def plot_learning_curve(
         residual_ax.axhline(0.0, color=MUTED, linewidth=0.5, zorder=1)
         z = test["z"].to_numpy(dtype=float)
         finite = np.isfinite(z)
-        residual_ax.plot(
-            t[finite], z[finite], color=SIM_COLOR, linewidth=0.9, label=r"$\varepsilon_g$"
-        )
+        residual_ax.plot(t[finite], z[finite], color=SIM_COLOR, linewidth=0.9, label=r"$\varepsilon_g$")
         if overlap is not None and not overlap.empty:
             oz = overlap["z"].to_numpy(dtype=float)
             ok = np.isfinite(oz)
@@ -527,9 +509,7 @@ def _marker_times(times: np.ndarray, count: int = 14) -> np.ndarray:
     return np.unique(np.searchsorted(times, targets).clip(0, times.size - 1))
 
 
-def plot_order_parameters(
-    summary: pd.DataFrame, *, size: FigureSize = FigureSize(), max_legend: int = 8
-) -> Figure:
+def plot_order_parameters(summary: pd.DataFrame, *, size: FigureSize = FigureSize(), max_legend: int = 8) -> Figure:
     """One panel per family (Q, R, T, v): simulation markers with SEM error bars, theory lines.
 
     Entries get distinct hues up to ``max_legend`` per panel; larger families are drawn from
@@ -537,16 +517,12 @@ def plot_order_parameters(
     """
     families = order_parameter_entries(summary["observable"].unique())
     if not families:
-        raise FigureInputError(
-            "summary.parquet: no order-parameter observables (Q[i,j], R[i,m], T[m,n], v[k])"
-        )
+        raise FigureInputError("summary.parquet: no order-parameter observables (Q[i,j], R[i,m], T[m,n], v[k])")
     panels = len(families)
     columns = 1 if panels == 1 else 2
     rows = math.ceil(panels / columns)
     with plt.rc_context(HOUSE_RC):
-        fig, axes = plt.subplots(
-            rows, columns, sharex=True, squeeze=False, figsize=size.inches("order_parameters")
-        )
+        fig, axes = plt.subplots(rows, columns, sharex=True, squeeze=False, figsize=size.inches("order_parameters"))
         flat_axes = axes.ravel()
         for ax, (family, entries) in zip(flat_axes, families.items(), strict=False):
             many = len(entries) > max_legend
@@ -640,9 +616,7 @@ def read_scaling(folder: Path) -> dict:
         raise FigureInputError(f"{path}: missing key(s) {', '.join(missing)}")
     lengths = {len(content[key]) for key in ("sizes", "gaps", "gap_errs")}
     if len(lengths) != 1 or not content["sizes"]:
-        raise FigureInputError(
-            f"{path}: sizes, gaps and gap_errs must be non-empty lists of equal length"
-        )
+        raise FigureInputError(f"{path}: sizes, gaps and gap_errs must be non-empty lists of equal length")
     return content
 
 
@@ -763,9 +737,7 @@ def read_sweep(folder: Path) -> tuple[list[str], pd.DataFrame]:
     return keys, runs
 
 
-def sweep_metric_column(
-    metric: str, runs: pd.DataFrame, where: Path | str = "runs.parquet"
-) -> tuple[str, str]:
+def sweep_metric_column(metric: str, runs: pd.DataFrame, where: Path | str = "runs.parquet") -> tuple[str, str]:
     """Resolve a metric name (short name or runs.parquet column) to (column, axis label)."""
     if metric in SWEEP_METRICS:
         column, label = SWEEP_METRICS[metric]
@@ -785,9 +757,11 @@ def _key_label(key: str) -> str:
         "sgd.learning_rate": r"learning rate $\eta$",
         "sgd.second_layer_learning_rate": r"$\eta_v$",
         "data.input_dim": r"$N$",
-        "student.hidden_units": r"$K$",
-        "teacher.hidden_units": r"$M$",
-        "teacher.noise": r"$\sigma$",
+        "student.hidden": r"$K$",
+        "teacher.hidden": r"$M$",
+        "teacher.noise_std": r"$\sigma$",
+        "sgd.weight_decay": r"weight decay $\kappa$",
+        "sgd.time": r"training time $t$",
     }
     return known.get(key, key)
 
@@ -802,11 +776,7 @@ def _format_value(value: object) -> str:
 
 def _wants_log(values: np.ndarray) -> bool:
     numeric = pd.to_numeric(pd.Series(values), errors="coerce").to_numpy(dtype=float)
-    return bool(
-        np.all(np.isfinite(numeric))
-        and np.all(numeric > 0)
-        and numeric.max() / numeric.min() >= 20.0
-    )
+    return bool(np.all(np.isfinite(numeric)) and np.all(numeric > 0) and numeric.max() / numeric.min() >= 20.0)
 
 
 def plot_sweep(
@@ -845,9 +815,7 @@ def plot_sweep(
             width, height = size.inches("sweep")
             if size.preset is not None:
                 height = height * rows / max(1, columns) if panels > 1 else height
-            fig, axes = plt.subplots(
-                rows, columns, squeeze=False, figsize=(width, max(height, 1.2 * rows))
-            )
+            fig, axes = plt.subplots(rows, columns, squeeze=False, figsize=(width, max(height, 1.2 * rows)))
             values = pd.to_numeric(runs[column], errors="coerce")
             finite = values[np.isfinite(values)]
             vmin = float(finite.min()) if len(finite) else 0.0
@@ -868,15 +836,10 @@ def plot_sweep(
 
 def _group_title(keys: Sequence[str], values: object) -> str:
     values = values if isinstance(values, tuple) else (values,)
-    return ", ".join(
-        f"{_key_label(key)} = {_format_value(value)}"
-        for key, value in zip(keys, values, strict=False)
-    )
+    return ", ".join(f"{_key_label(key)} = {_format_value(value)}" for key, value in zip(keys, values, strict=False))
 
 
-def _sweep_curves(
-    ax: Axes, groups: list, others: Sequence[str], key: str, column: str, label: str
-) -> None:
+def _sweep_curves(ax: Axes, groups: list, others: Sequence[str], key: str, column: str, label: str) -> None:
     all_values = np.unique(np.concatenate([part[key].to_numpy() for _, part in groups]))
     if _wants_log(all_values):
         ax.set_xscale("log")
@@ -917,9 +880,7 @@ def _sweep_curves(
                 markersize=3.5,
                 color=colour,
             )
-        ax.plot(
-            [], [], linestyle="none", marker="^", markersize=3.5, color=MUTED, label="never departs"
-        )
+        ax.plot([], [], linestyle="none", marker="^", markersize=3.5, color=MUTED, label="never departs")
     if column.endswith("max_abs_z"):
         ax.axhline(
             AGREEMENT_MAX_Z,
@@ -981,11 +942,7 @@ def _sweep_heat_map(
         for row in range(data.shape[0]):
             for col in range(data.shape[1]):
                 value = data[row, col]
-                text = (
-                    ("never" if metric == "divergence_t" else "—")
-                    if not np.isfinite(value)
-                    else f"{value:.2g}"
-                )
+                text = ("never" if metric == "divergence_t" else "—") if not np.isfinite(value) else f"{value:.2g}"
                 ax.text(
                     col,
                     row,
@@ -1062,9 +1019,7 @@ def sweep_figure_stem(folder: Path, metric: str) -> Path:
 def write_sweep_figure(folder: Path, options: FigureOptions = FigureOptions()) -> list[Path]:
     keys, runs = read_sweep(folder)
     sweep_metric_column(options.metric, runs, Path(folder) / "runs.parquet")
-    fig = plot_sweep(
-        keys, runs, metric=options.metric, axes_keys=options.sweep_axes, size=options.size
-    )
+    fig = plot_sweep(keys, runs, metric=options.metric, axes_keys=options.sweep_axes, size=options.size)
     try:
         return save_figure(fig, sweep_figure_stem(folder, options.metric), options.formats)
     finally:

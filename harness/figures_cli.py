@@ -28,9 +28,7 @@ def add_figure_commands(subparsers: argparse._SubParsersAction) -> None:
             "against N; a sweep folder one metric over the swept keys."
         ),
     )
-    figure.add_argument(
-        "folders", nargs="+", metavar="FOLDER", type=Path, help="run, scaling or sweep folder"
-    )
+    figure.add_argument("folders", nargs="+", metavar="FOLDER", type=Path, help="run, scaling or sweep folder")
     figure.add_argument(
         "--format",
         dest="formats",
@@ -94,14 +92,8 @@ def run_figure_command(args: argparse.Namespace) -> int:
 
     try:
         if args.seeds_shown < 0:
-            raise figures.FigureInputError(
-                f"--seeds-shown {args.seeds_shown}: expected a count >= 0"
-            )
-        axes = (
-            tuple(key.strip() for key in args.sweep_axes.split(",") if key.strip())
-            if args.sweep_axes
-            else None
-        )
+            raise figures.FigureInputError(f"--seeds-shown {args.seeds_shown}: expected a count >= 0")
+        axes = tuple(key.strip() for key in args.sweep_axes.split(",") if key.strip()) if args.sweep_axes else None
         options = figures.FigureOptions(
             formats=figures.parse_formats(args.formats),
             size=figures.parse_size(args.size),

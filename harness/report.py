@@ -45,15 +45,17 @@ SWEEP_CAPTIONS = {
 HEADLINE_KEY_ENDINGS = (
     "kind",
     "input_dim",
-    "latent_dim",
-    "hidden_units",
+    "hidden",
     "activation",
     "learning_rate",
     "second_layer_learning_rate",
     "train_second_layer",
-    "noise",
+    "noise_std",
+    "optimizer",
+    "weight_decay",
+    "time",
     "seeds",
-    "t_max",
+    "source",
 )
 
 
@@ -114,6 +116,7 @@ class ResultsFolder:
     runs: list[RunEntry]
     scalings: list[ScalingEntry]
     sweeps: list[SweepEntry]
+    problems: list[str] = field(default_factory=list)
 
 
 # ---------------------------------------------------------------------------------------
@@ -240,32 +243,21 @@ def collect(root: Path, *, draw_figures: bool = True) -> ResultsFolder:
     """Read every result below ``root``; raise FigureInputError if there is none."""
     root = Path(root)
     if not root.is_dir():
-        raise figures.FigureInputError(
-            f"{root}: not a folder; expected a results folder holding run folders"
-        )
+        raise figures.FigureInputError(f"{root}: not a folder; expected a results folder holding run folders")
     run_paths, scaling_paths, sweep_paths = discover(root)
     if not (run_paths or scaling_paths or sweep_paths):
         raise figures.FigureInputError(
             f"{root}: no results found; expected subfolders with manifest.json + metrics.parquet (runs), "
             "verdict.json (scaling) or sweep.json + runs.parquet (sweeps)"
         )
-    runs = [read_run(path) for path in run_paths]
+    # One unreadable result must not hide the others: it is listed under "skipped" instead.
+    problems: list[str] = []
+    runs = _read_each(run_paths, read_run, problems)
     _disambiguate_run_ids(runs, root)
-    scalings = [
-        ScalingEntry(path=path, verdict=figures.read_scaling(path)) for path in scaling_paths
-    ]
-    sweeps = []
-    for path in sweep_paths:
-        keys, rows = figures.read_sweep(path)
-        spec = figures.read_json(path / "sweep.json")
-        sweeps.append(
-            SweepEntry(
-                path=path,
-                swept_keys=keys,
-                runs=rows,
-                missing_runs=len(set(spec["run_ids"]) - set(rows["run_id"])),
-            )
-        )
+    scalings = _read_each(scaling_paths, lambda path: ScalingEntry(path, figures.read_scaling(path)), problems)
+    sweeps = _read_each(sweep_paths, _read_sweep_entry, problems)
+    if not (runs or scalings or sweeps):
+        raise figures.FigureInputError(problems[0])
     if draw_figures:
         for entry in runs:
             _ensure_run_figures(entry)
@@ -273,7 +265,24 @@ def collect(root: Path, *, draw_figures: bool = True) -> ResultsFolder:
             _ensure_scaling_figure(entry)
         for entry in sweeps:
             _ensure_sweep_figures(entry)
-    return ResultsFolder(root=root, runs=runs, scalings=scalings, sweeps=sweeps)
+    return ResultsFolder(root=root, runs=runs, scalings=scalings, sweeps=sweeps, problems=problems)
+
+
+def _read_each(paths: Sequence[Path], reader: Callable[[Path], object], problems: list[str]) -> list:
+    entries = []
+    for path in paths:
+        try:
+            entries.append(reader(path))
+        except figures.FigureInputError as error:
+            problems.append(str(error))
+    return entries
+
+
+def _read_sweep_entry(path: Path) -> SweepEntry:
+    keys, rows = figures.read_sweep(path)
+    spec = figures.read_json(path / "sweep.json")
+    missing = len(set(spec["run_ids"]) - set(rows["run_id"]))
+    return SweepEntry(path=path, swept_keys=keys, runs=rows, missing_runs=missing)
 
 
 def _disambiguate_run_ids(runs: list[RunEntry], root: Path) -> None:
@@ -349,6 +358,8 @@ th a.sort.current { color: var(--ink); }
 tbody tr:hover { background: #f6f6f6; }
 .scroll { overflow-x: auto; margin-bottom: 8px; }
 .overview td.mono { white-space: nowrap; }
+.overview th { white-space: normal; min-width: 4.5em; }
+.overview th.text { min-width: 0; }
 .overview th .key { font-family: "DejaVu Sans Mono", monospace; font-weight: 600; font-size: 12px; }
 .badge { display: inline-block; padding: 0 7px; border-radius: 9px; font-size: 12px; font-weight: 600;
          font-family: "DejaVu Sans", Arial, sans-serif; white-space: nowrap; }
@@ -420,25 +431,17 @@ def varying_keys(runs: Sequence[RunEntry]) -> list[str]:
     keys: dict[str, None] = {}
     for run in runs:
         keys.update(dict.fromkeys(run.scenario))
-    return [
-        key
-        for key in keys
-        if len({json.dumps(run.scenario.get(key), default=str) for run in runs}) > 1
-    ]
+    return [key for key in keys if len({json.dumps(run.scenario.get(key), default=str) for run in runs}) > 1]
 
 
 def _figure_html(files: dict[str, Path], root: Path, captions: dict[str, str]) -> str:
     items = []
     for name, png in files.items():
         pdf = png.with_suffix(".pdf")
-        image = (
-            f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}" loading="lazy">'
-        )
+        image = f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}" loading="lazy">'
         if pdf.is_file():
             image = f'<a href="{_href(pdf, root)}" title="vector PDF">{image}</a>'
-        items.append(
-            f"<figure>{image}<figcaption>{_e(captions.get(name, name))}</figcaption></figure>"
-        )
+        items.append(f"<figure>{image}<figcaption>{_e(captions.get(name, name))}</figcaption></figure>")
     return f'<div class="figures">{"".join(items)}</div>' if items else ""
 
 
@@ -462,9 +465,7 @@ def _metrics_table(metrics: pd.DataFrame, names: Sequence[str]) -> str:
         row = metrics[metrics["observable"] == name]
         if row.empty:
             continue
-        cells = "".join(
-            f"<td>{_metric_text(column, row[column].iloc[0])}</td>" for column, _ in METRIC_HEADERS
-        )
+        cells = "".join(f"<td>{_metric_text(column, row[column].iloc[0])}</td>" for column, _ in METRIC_HEADERS)
         label = OBSERVABLE_HTML.get(name, f"<code>{_e(name)}</code>")
         rows.append(f'<tr><td class="text">{label}</td>{cells}</tr>')
     if not rows:
@@ -491,18 +492,13 @@ def _metric_text(column: str, value: object) -> str:
 
 def _key_value_table(items: Iterable[tuple[str, object]]) -> str:
     rows = "".join(
-        f'<tr><td class="text mono">{_e(k)}</td><td class="text mono">{_e(_fmt(v, 6))}</td></tr>'
-        for k, v in items
+        f'<tr><td class="text mono">{_e(k)}</td><td class="text mono">{_e(_fmt(v, 6))}</td></tr>' for k, v in items
     )
     return f"<table><tbody>{rows}</tbody></table>"
 
 
 def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
-    headline = [
-        key
-        for key in run.scenario
-        if key in varying or key.rsplit(".", 1)[-1] in HEADLINE_KEY_ENDINGS
-    ]
+    headline = [key for key in run.scenario if key in varying or key.rsplit(".", 1)[-1] in HEADLINE_KEY_ENDINGS]
     scenario_line = (
         " · ".join(
             (
@@ -538,9 +534,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
     ]
     manifest_items += [(f"timings.{k}", v) for k, v in (run.manifest.get("timings") or {}).items()]
     diverged_note = (
-        f'<p class="note">{len(diverged)} diverged seed(s): {_e(_fmt(list(diverged)))}</p>'
-        if diverged
-        else ""
+        f'<p class="note">{len(diverged)} diverged seed(s): {_e(_fmt(list(diverged)))}</p>' if diverged else ""
     )
     folder = _href(run.path, root)
     return f"""
@@ -561,10 +555,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
 def _short_keys(keys: Sequence[str]) -> dict[str, str]:
     """Column labels for scenario keys: the last part when that is unambiguous, else the full key."""
     endings = [key.rsplit(".", 1)[-1] for key in keys]
-    return {
-        key: (end if endings.count(end) == 1 else key)
-        for key, end in zip(keys, endings, strict=False)
-    }
+    return {key: (end if endings.count(end) == 1 else key) for key, end in zip(keys, endings, strict=False)}
 
 
 def _overview(runs: Sequence[RunEntry], varying: Sequence[str], current: tuple[str, bool]) -> str:
@@ -588,16 +579,10 @@ def _overview(runs: Sequence[RunEntry], varying: Sequence[str], current: tuple[s
     heads.append('<th class="text">verdict</th>')
     body = []
     for run in runs:
-        cells = [
-            f'<td class="text mono"><a href="#{_anchor("run", run.run_id)}">{_e(run.run_id)}</a></td>'
-        ]
-        cells += [
-            f'<td class="text mono">{_e(_fmt(run.scenario.get(key)))}</td>' for key in varying
-        ]
+        cells = [f'<td class="text mono"><a href="#{_anchor("run", run.run_id)}">{_e(run.run_id)}</a></td>']
+        cells += [f'<td class="text mono">{_e(_fmt(run.scenario.get(key)))}</td>' for key in varying]
         for sort in SORT_KEYS[1:]:
-            cells.append(
-                f"<td>{_metric_text(sort.slug.replace('-', '_'), float(sort.value(run)))}</td>"
-            )
+            cells.append(f"<td>{_metric_text(sort.slug.replace('-', '_'), float(sort.value(run)))}</td>")
         cells.append(f'<td class="text">{_badge(run.verdict)}</td>')
         body.append(f"<tr>{''.join(cells)}</tr>")
     return f'<div class="scroll">{_table("".join(heads), body, css="overview")}</div>'
@@ -628,15 +613,14 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
             ("amplitude a", _pm_html(v["amplitude"], v["amplitude_err"])),
             ("sizes N", _e(", ".join(_fmt(n) for n in v["sizes"]))),
         ]
-        table = "".join(
-            f'<tr><td class="text">{_e(k)}</td><td class="text mono">{val}</td></tr>'
-            for k, val in rows
-        )
+        table = "".join(f'<tr><td class="text">{_e(k)}</td><td class="text mono">{val}</td></tr>' for k, val in rows)
         note = f'<p class="note">{_e(entry.figure_note)}</p>' if entry.figure_note else ""
+        # verdict.json from `harness scale` also says why and what to do next; show it when present.
+        explanation = "".join(f" · {_e(v[key])}" for key in ("reason", "advice") if v.get(key))
         parts.append(
             f"""<article id="{_anchor("scaling", name)}">
 <h3>{_e(name)} {_badge(str(v["verdict"]))}</h3>
-<p class="scenario">gap fitted as a N<sup>−b</sup> + c</p>
+<p class="scenario">gap fitted as a N<sup>−b</sup> + c{explanation}</p>
 <table><tbody>{table}</tbody></table>
 {_figure_html(entry.figure_files, root, {"scaling": "gap against N with the fitted law"})}{note}
 </article>"""
@@ -656,17 +640,11 @@ def _sweep_section(entries: Sequence[SweepEntry], root: Path, run_ids: set[str])
             if figures.SWEEP_METRICS[m][0] in entry.runs.columns
         ]
         columns = ["run_id", *entry.swept_keys, *metric_columns]
-        head = "".join(
-            f'<th class="{"text" if c == "run_id" else ""}">{_e(c)}</th>' for c in columns
-        )
+        head = "".join(f'<th class="{"text" if c == "run_id" else ""}">{_e(c)}</th>' for c in columns)
         body = []
         for _, row in entry.runs.sort_values(entry.swept_keys).iterrows():
             run_id = str(row["run_id"])
-            first = (
-                f'<a href="#{_anchor("run", run_id)}">{_e(run_id)}</a>'
-                if run_id in run_ids
-                else _e(run_id)
-            )
+            first = f'<a href="#{_anchor("run", run_id)}">{_e(run_id)}</a>' if run_id in run_ids else _e(run_id)
             cells = [f'<td class="text mono">{first}</td>']
             for column in columns[1:]:
                 cells.append(f"<td>{_metric_text(column, row[column])}</td>")
@@ -695,12 +673,9 @@ def render_page(results: ResultsFolder, sort: SortKey, descending: bool, generat
     runs = ordered(results.runs, sort, descending)
     varying = varying_keys(results.runs)
     counts = {
-        verdict: sum(run.verdict == verdict for run in results.runs)
-        for verdict in ("agree", "disagree", "no verdict")
+        verdict: sum(run.verdict == verdict for run in results.runs) for verdict in ("agree", "disagree", "no verdict")
     }
-    order_words = (
-        f"{re.sub('<[^>]+>', '', sort.label_html)}, {'descending' if descending else 'ascending'}"
-    )
+    order_words = f"{re.sub('<[^>]+>', '', sort.label_html)}, {'descending' if descending else 'ascending'}"
     sort_links = []
     for key in SORT_KEYS:
         arrows = []
@@ -711,14 +686,20 @@ def render_page(results: ResultsFolder, sort: SortKey, descending: bool, generat
                 arrows.append(f'<a href="{page_name(key, desc)}" title="{words}">{arrow}</a>')
         sort_links.append(f'<span class="order">{key.label_html} {"".join(arrows)}</span>')
     runs_html = (
-        _overview(runs, varying, (sort.slug, descending))
-        + "".join(_run_card(run, root, varying) for run in runs)
+        _overview(runs, varying, (sort.slug, descending)) + "".join(_run_card(run, root, varying) for run in runs)
         if runs
         else '<p class="empty">No run folders in this folder.</p>'
     )
     title = f"Results: {root.resolve().name}"
     no_verdict = f", {counts['no verdict']} without verdict" if counts["no verdict"] else ""
     run_ids = {run.run_id for run in results.runs}
+    skipped = (
+        '<section id="skipped"><h2>Skipped</h2><ul class="note">'
+        + "".join(f"<li>{_e(problem)}</li>" for problem in results.problems)
+        + "</ul></section>"
+        if results.problems
+        else ""
+    )
     return f"""<!DOCTYPE html>
 <html lang="en">
 <head>
@@ -738,7 +719,7 @@ Runs ordered by {_e(order_words)}; runs without a value come last.</p>
 <nav>Sections: <a href="#runs">runs</a> <a href="#scaling">finite-size scaling</a> <a href="#sweeps">sweeps</a></nav>
 </header>
 <main>
-<section id="runs"><h2>Runs</h2>{runs_html}</section>
+{skipped}<section id="runs"><h2>Runs</h2>{runs_html}</section>
 <section id="scaling"><h2>Finite-size scaling</h2>{_scaling_section(results.scalings, root)}</section>
 <section id="sweeps"><h2>Sweeps</h2>{_sweep_section(results.sweeps, root, run_ids)}</section>
 </main>

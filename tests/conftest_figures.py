@@ -71,14 +71,12 @@ def _theory_curves(
         if family == "Q":
             base = q0[min(i, j), max(i, j)] * (1.0 if i == j else 0.1)
             target = 1.0 if i == j else 0.0
-            curves[name] = base + (target - base) * (1.0 - np.exp(-times / 8.0)) * (
-                0.4 + 0.6 * escape
-            )
+            curves[name] = base + (target - base) * (1.0 - np.exp(-times / 8.0)) * (0.4 + 0.6 * escape)
         elif family == "R":
             target = 1.0 if i == j else 0.0
-            curves[name] = 0.01 + (target - 0.01) * (
-                0.5 * (1.0 - np.exp(-times / 5.0)) + 0.5 * escape
-            ) * (1.0 if i == j else 0.6)
+            curves[name] = 0.01 + (target - 0.01) * (0.5 * (1.0 - np.exp(-times / 5.0)) + 0.5 * escape) * (
+                1.0 if i == j else 0.6
+            )
         elif family == "T":
             curves[name] = np.full_like(times, 1.0 if i == j else 0.0)
         else:
@@ -132,11 +130,7 @@ def write_run_folder(
             if name in ("test_error", "overlap_error"):
                 theory = theory * (1.0 + theory_bias * late)
             sim[0] = theory[0]  # the pair starts from the same initial condition
-            rows.append(
-                pd.DataFrame(
-                    {"seed": seed, "t": grid, "observable": name, "sim": sim, "theory": theory}
-                )
-            )
+            rows.append(pd.DataFrame({"seed": seed, "t": grid, "observable": name, "sim": sim, "theory": theory}))
     trajectories = pd.concat(rows, ignore_index=True)
     trajectories["seed"] = trajectories["seed"].astype("int64")
     trajectories.to_parquet(run_dir / "trajectories.parquet", index=False)
@@ -149,22 +143,22 @@ def write_run_folder(
         run_dir / "scenario.toml",
         {
             "data": {"kind": "gaussian", "input_dim": input_dim},
-            "teacher": {"hidden_units": teachers, "activation": "erf", "noise": 0.0},
+            "teacher": {"hidden": teachers, "activation": "erf", "noise_std": 0.0},
             "student": {
-                "hidden_units": students,
+                "hidden": students,
                 "activation": "erf",
                 "train_second_layer": train_second_layer,
                 "init_scale": 0.1,
             },
-            "sgd": {"learning_rate": learning_rate, "second_layer_learning_rate": 0.0},
-            "run": {"seeds": seeds, "t_max": t_max, "records": times},
-            "theory": {"kind": "iid"},
+            "sgd": {"learning_rate": learning_rate, "second_layer_learning_rate": learning_rate, "time": t_max},
+            "run": {"seeds": seeds, "evaluations": times, "dtype": "float64"},
+            "theory": {"source": "builtin"},
         },
     )
     manifest = {
         "versions": {"python": "3.11", "jax": "0.10.2", "numpy": np.__version__},
         "jax_backend": "cpu",
-        "device": "TFRT_CPU_0",
+        "jax_device": "cpu:cpu",
         "dtype": "float64",
         "seeds": list(range(seeds)),
         "diverged_seeds": [],
@@ -247,7 +241,7 @@ def write_sweep_folder(
     swept: dict[str, list[float]] | None = None,
 ) -> Path:
     """A sweep result: sweep.json plus runs.parquet rows over the product of ``swept`` values."""
-    swept = swept or {"sgd.learning_rate": [0.1, 0.3, 1.0, 3.0], "student.hidden_units": [2, 3, 4]}
+    swept = swept or {"sgd.learning_rate": [0.1, 0.3, 1.0, 3.0], "student.hidden": [2, 3, 4]}
     folder = root / name
     folder.mkdir(parents=True)
     keys = list(swept)
@@ -257,7 +251,7 @@ def write_sweep_folder(
     for index in range(flat[0].size):
         values = {key: flat[k][index] for k, key in enumerate(keys)}
         eta = values.get("sgd.learning_rate", 0.5)
-        width = values.get("student.hidden_units", 2)
+        width = values.get("student.hidden", 2)
         row: dict[str, object] = {"run_id": f"{name}-{index:03d}"}
         row.update(values)
         row["data.input_dim"] = 100
@@ -267,7 +261,5 @@ def write_sweep_folder(
         row["test_error.divergence_t"] = 50.0 / eta if eta > 1.0 else float("nan")
         rows.append(row)
     pd.DataFrame(rows).to_parquet(folder / "runs.parquet", index=False)
-    (folder / "sweep.json").write_text(
-        json.dumps({"swept_keys": keys, "run_ids": [row["run_id"] for row in rows]})
-    )
+    (folder / "sweep.json").write_text(json.dumps({"swept_keys": keys, "run_ids": [row["run_id"] for row in rows]}))
     return folder

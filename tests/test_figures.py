@@ -206,9 +206,7 @@ def test_sweep_heat_map_over_two_keys(tmp_path):
     assert data.shape == (3, 4)  # hidden units (rows) x learning rates (columns)
     assert ax.get_xlabel() == r"learning rate $\eta$" and ax.get_ylabel() == "$K$"
     assert [t.get_text() for t in ax.get_xticklabels()] == ["0.1", "0.3", "1", "3"]
-    expected = runs.pivot_table(
-        index="student.hidden_units", columns="sgd.learning_rate", values="test_error.max_abs_z"
-    )
+    expected = runs.pivot_table(index="student.hidden", columns="sgd.learning_rate", values="test_error.max_abs_z")
     np.testing.assert_allclose(np.ma.filled(data, np.nan), expected.to_numpy())
     colourbar_ax = fig.axes[1]
     assert colourbar_ax.get_ylabel() == r"max $|z|$ of $\varepsilon_g$"

@@ -68,11 +68,11 @@ def results(tmp_path_factory) -> Path:
     root = tmp_path_factory.mktemp("results")
     write_run_folder(root, "run-agree", seeds=4, rng_seed=1, times=24)
     write_run_folder(root, "run-departs", theory_bias=0.4, seeds=6, rng_seed=2, times=24, learning_rate=1.5)
-    write_run_folder(root, "run=odd name", students=3, train_second_layer=True, rng_seed=3, times=24)
     write_scaling_folder(root, "scaling_erf")
     sweep = write_sweep_folder(root, "sweep_lr", swept={"sgd.learning_rate": [0.5, 1.0, 2.0]})
-    # A run nested inside the sweep folder is found too.
-    write_run_folder(sweep, "sweep_lr-000", times=16, rng_seed=5)
+    # A run nested inside the sweep folder (as `harness sweep` writes them) is found too; its
+    # name needs escaping in HTML and in URLs.
+    write_run_folder(sweep, "run=odd name", students=3, train_second_layer=True, rng_seed=3, times=16)
     report.write_report(root)
     return root
 
@@ -106,13 +106,13 @@ def test_every_referenced_file_exists(results):
 
 def test_every_run_scaling_and_sweep_is_listed(results):
     text = " ".join(read_page(results / "index.html").text)
-    for run_id in ("run-agree", "run-departs", "run=odd name", "sweep_lr-000"):
+    for run_id in ("run-agree", "run-departs", "run=odd name"):
         assert run_id in text
     assert "scaling_erf" in text and "sweep_lr" in text
     ids = read_page(results / "index.html").ids
     assert {"runs", "scaling", "sweeps"} <= set(ids)
     # Figures were drawn because they were missing.
-    for run in ("run-agree", "run-departs", "run=odd name", "sweep_lr/sweep_lr-000"):
+    for run in ("run-agree", "run-departs", "sweep_lr/run=odd name"):
         assert (results / run / "figures" / "learning_curve.png").is_file()
         assert (results / run / "figures" / "order_parameters.pdf").is_file()
     assert (results / "scaling_erf" / "figures" / "scaling.png").is_file()
@@ -121,12 +121,12 @@ def test_every_run_scaling_and_sweep_is_listed(results):
 
 def test_verdicts_follow_max_abs_z(results):
     page = (results / "index.html").read_text(encoding="utf-8")
-    for run in ("run-agree", "run-departs", "run=odd name"):
+    for run in ("run-agree", "run-departs", "sweep_lr/run=odd name"):
         max_z = float(
             pd.read_parquet(results / run / "metrics.parquet").set_index("observable").loc["test_error", "max_abs_z"]
         )
         expected = "agree" if max_z <= report.AGREEMENT_MAX_Z else "disagree"
-        card = re.search(rf'<h3>{re.escape(html.escape(run))} <span class="badge (\w+)">', page)
+        card = re.search(rf'<h3>{re.escape(html.escape(Path(run).name))} <span class="badge (\w+)">', page)
         assert card is not None and card.group(1) == expected
     assert re.search(r'<h3>run-departs <span class="badge disagree">', page)
 
@@ -148,7 +148,7 @@ def test_sort_pages_order_runs_by_metric(results):
         run: float(
             pd.read_parquet(results / run / "metrics.parquet").set_index("observable").loc["test_error", "max_abs_z"]
         )
-        for run in ("run-agree", "run-departs", "run=odd name", "sweep_lr/sweep_lr-000")
+        for run in ("run-agree", "run-departs", "sweep_lr/run=odd name")
     }
     by_name = {Path(run).name: value for run, value in metrics.items()}
     descending = run_ids_in(results / "index-by-max-abs-z-down.html")
@@ -170,7 +170,7 @@ def test_never_departing_runs_sort_last(results):
         path.name: float(
             pd.read_parquet(path / "metrics.parquet").set_index("observable").loc["test_error", "divergence_t"]
         )
-        for path in (results / "run-agree", results / "run-departs", results / "run=odd name")
+        for path in (results / "run-agree", results / "run-departs", results / "sweep_lr" / "run=odd name")
     }
     assert values["run-departs"] == values["run-departs"], "the fixture's biased theory must depart"
     for page in ("index-by-divergence-t-down.html", "index-by-divergence-t-up.html"):
@@ -219,3 +219,15 @@ def test_report_command_without_drawing(tmp_path, capsys):
     page = read_page(tmp_path / "index.html")
     assert page.images == []  # nothing drawn, nothing referenced
     assert "run-only" in " ".join(page.text)
+
+
+def test_unreadable_result_is_listed_as_skipped_not_fatal(tmp_path):
+    write_run_folder(tmp_path, "run-fine", times=12)
+    broken = write_run_folder(tmp_path, "run-broken", times=12)
+    (broken / "metrics.parquet").write_bytes(b"not parquet")
+    assert _report_cli(str(tmp_path), "--keep-figures") == 0
+    page = read_page(tmp_path / "index.html")
+    assert "skipped" in page.ids
+    text = " ".join(page.text)
+    assert "run-broken" in text and "not a readable Parquet table" in text
+    assert run_ids_in(tmp_path / "index.html") == ["run-fine"]
