@@ -1,0 +1,115 @@
+"""The JAX simulation against classic closed forms and against its paired theory."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from harness import comparison, simulation
+from harness import scenario as sc
+from harness.experiment import run_experiment, simulate
+from harness.paired_theory import builtin_iid, initial_state
+
+
+def test_lms_learning_curve_matches_the_exact_finite_n_recursion():
+    # Classic LMS analysis with white Gaussian inputs (Widrow & Hoff; Haykin, Adaptive Filter
+    # Theory -- from memory): for a linear student and teacher, K = M = 1, label noise sigma,
+    # E[eps_{s+1} | eps_s] = eps_s (1 - 2 eta/N + eta^2 (N+2)/N^2) + eta^2 sigma^2 / (2N)
+    # exactly at every finite N. For linear networks overlap_error = |w - w*|^2 / (2N) is eps_g
+    # itself, so each seed's expected curve follows from its own eps_0.
+    n, eta, sigma = 50, 0.5, 0.3
+    scenario = sc.resolve({
+        "data": {"input_dim": n},
+        "teacher": {"hidden": 1, "activation": "linear", "noise_std": sigma},
+        "student": {"hidden": 1, "activation": "linear", "init_std": 0.5},
+        "sgd": {"learning_rate": eta, "time": 6.0},
+        "run": {"seeds": 96, "evaluations": 8, "spacing": "linear", "test_samples": 2000, "dtype": "float64"},
+        "theory": {"source": "none"},
+    })
+    result = simulate(scenario)
+    eps = result.values[:, :, 1]  # overlap_error, [S, E]
+    a = 1 - 2 * eta / n + eta**2 * (n + 2) / n**2
+    b = eta**2 * sigma**2 / (2 * n)
+    steps = result.steps[None, :]
+    expected = eps[:, :1] * a**steps + b * (1 - a**steps) / (1 - a)
+    diff = eps - expected
+    mean = diff.mean(axis=0)
+    sem = diff.std(axis=0, ddof=1) / np.sqrt(diff.shape[0])
+    assert np.all(np.abs(mean[1:]) <= 3 * sem[1:]), (mean / np.where(sem > 0, sem, 1))
+    # The measured test error (held-out samples) is an unbiased estimate of the same curve.
+    test = result.values[:, :, 0] - expected
+    z_test = test.mean(axis=0) / (test.std(axis=0, ddof=1) / np.sqrt(test.shape[0]))
+    assert np.all(np.abs(z_test) <= 3.5)
+
+
+@pytest.fixture(scope="module")
+def erf_run():
+    # 32 seeds: with S seeds z follows Student's t with S - 1 degrees of freedom, whose tails
+    # beyond 4 are far heavier for S ~ 10 than for S ~ 30 (common practice, no source).
+    scenario = sc.resolve({
+        "data": {"input_dim": 300},
+        "student": {"init_std": 0.5},
+        "sgd": {"learning_rate": 1.0, "time": 20.0},
+        "run": {"seeds": 32, "evaluations": 12, "test_samples": 4000},
+    })
+    return scenario, run_experiment(scenario)
+
+
+def test_simulation_agrees_with_paired_theory_on_a_small_erf_scenario(erf_run):
+    scenario, result = erf_run
+    metric_table = comparison.metrics(comparison.summarise(result.trajectories)).set_index("observable")
+    assert not np.isfinite(result.diverged_at).any()
+    checked = [o for o in metric_table.index if o == "test_error" or o.startswith(("Q[", "R["))]
+    worst = metric_table.loc[checked, "max_abs_z"]
+    assert (worst <= 4).all(), worst.to_dict()
+    # The theory really moved: eps_g fell by more than half, so agreement is not trivial.
+    test = result.trajectories.theory[:, :, 0].mean(axis=0)
+    assert test[-1] < 0.5 * test[0]
+
+
+def test_the_same_machinery_flags_a_wrong_theory(erf_run):
+    # The notes' equations without the eta^2 term: wrong at any finite learning rate.
+    scenario, result = erf_run
+    start = initial_state(simulation.make_simulator(scenario), result.trajectories.seeds)
+    wrong = builtin_iid(scenario, start, result.trajectories.t, second_order=False)
+    traj = result.trajectories._replace(theory=wrong.values)
+    metric_table = comparison.metrics(comparison.summarise(traj)).set_index("observable")
+    assert metric_table.loc["test_error", "max_abs_z"] > 6
+    assert np.isfinite(metric_table.loc["test_error", "divergence_t"])
+
+
+def test_diverging_seeds_leave_the_averages_with_a_warning():
+    scenario = sc.resolve({
+        "data": {"input_dim": 50},
+        "student": {"activation": "linear", "init_std": 1.0},
+        "teacher": {"activation": "linear"},
+        "sgd": {"learning_rate": 6.0, "time": 20.0},
+        "run": {"seeds": 3, "evaluations": 6, "test_samples": 200},
+        "theory": {"source": "none"},
+    })
+    with pytest.warns(RuntimeWarning, match="diverged"):
+        result = simulate(scenario)
+    assert np.isfinite(result.diverged_at).all()
+    first = np.searchsorted(result.t, result.diverged_at)
+    for s, e in enumerate(first):
+        assert np.isnan(result.values[s, e:]).all() and np.isfinite(result.values[s, :e]).all()
+
+
+def test_runs_are_bit_identical_and_seeds_differ():
+    scenario = sc.resolve({
+        "data": {"input_dim": 60},
+        "sgd": {"time": 3.0},
+        "run": {"seeds": 3, "evaluations": 4, "test_samples": 100},
+        "theory": {"source": "none"},
+    })
+    first, second = simulate(scenario), simulate(scenario)
+    np.testing.assert_array_equal(first.values, second.values)
+    assert not np.allclose(first.values[0], first.values[1])
+
+
+def test_evaluation_times_include_zero_and_the_end():
+    s = sc.resolve({"data": {"input_dim": 100}, "sgd": {"time": 50.0}, "run": {"evaluations": 30}})
+    steps = simulation.evaluation_steps(s)
+    assert steps[0] == 0 and steps[-1] == 5000 and np.all(np.diff(steps) > 0) and len(steps) == 30
+    lin = simulation.evaluation_steps(sc.with_overrides(s, {"run.spacing": "linear"}))
+    assert np.allclose(np.diff(lin), 5000 / 29, atol=1)
