@@ -34,6 +34,8 @@ class Progress:
     def update(self, done: float, note: str = "") -> None:
         if not self.enabled:
             return
+        if done <= 0 and self._last_tenth < 0:
+            self.started = time.perf_counter()  # time the work, not the set-up before it
         fraction = min(max(done / self.total, 0.0), 1.0)
         elapsed = time.perf_counter() - self.started
         eta = elapsed * (1 - fraction) / fraction if fraction > 0 else float("nan")
