@@ -71,4 +71,7 @@ def predict(scenario: dict, start: InitialState, times: np.ndarray) -> dict[str,
             out[f"R[{i},{m}]"] = np.asarray(R[:, :, i, m])
         if dyn.train_second_layer:
             out[f"v[{i}]"] = np.asarray(v[:, :, i])
+    for m in range(M):
+        for n in range(M):
+            out[f"T[{m},{n}]"] = np.asarray(T[:, :, m, n])  # constant: the teacher does not learn
     return out
