@@ -57,7 +57,9 @@ def print_run_summary(stored, scenario, *, stream=None) -> None:
     stream.write(f"  {'observable':<15}{'max |z|':>9}  {'first |z|>3 run at t':>21}  verdict\n")
     for _, row in verdicts.iterrows():
         z = row["max_abs_z"]
-        verdict = "n/a" if row["agree"] is None else ("agree" if row["agree"] else "DISAGREE")
+        # iterrows turns a None verdict into NaN; both mean "nothing to compare" (n/a)
+        verdict = "n/a" if row["agree"] is None or row["agree"] != row["agree"] else (
+            "agree" if row["agree"] else "DISAGREE")
         when = "-" if row["divergence_t"] != row["divergence_t"] else f"{row['divergence_t']:.3g}"
         stream.write(f"  {row['group']:<15}{z:>9.2f}  {when:>21}  {verdict}\n")
     stream.write(f"  (agree: |z| <= {AGREEMENT_Z:g} at every evaluation time)\n")
