@@ -341,7 +341,9 @@ def plot_learning_curve(
     ``trajectories`` (rows of test_error per seed) adds thin per-seed simulation curves,
     each with its own paired theory in the same hue, for at most ``seeds_shown`` seeds.
     ``show_overlap`` None draws overlap_error only when it differs from test_error.
-    ``divergence_t`` (from metrics.parquet) marks where |z| first left the agreement range.
+    ``divergence_t`` (the run's divergence time from metrics.parquet: from there on |z| stays
+    large) is marked by a vertical line in the residual panel.
+    Non-finite values (a diverged seed can make a mean infinite) are left out of the lines.
     """
     test = _observable(summary, "test_error")
     if test.empty:
@@ -365,11 +367,12 @@ def plot_learning_curve(
             _draw_seed_pairs(curve_ax, trajectories, seeds_shown)
 
         t = test["t"].to_numpy()
-        mean, sem = test["sim_mean"].to_numpy(), test["sim_sem"].to_numpy()
+        mean, sem, theory = (_finite_or_nan(test[c]) for c in ("sim_mean", "sim_sem", "theory_mean"))
         curve_ax.fill_between(t, mean - sem, mean + sem, color=SIM_COLOR, alpha=0.22, linewidth=0)
         curve_ax.plot(t, mean, color=SIM_COLOR, label=r"simulation $\pm$ SEM")
         if overlap is not None and not overlap.empty:
-            o_t, o_mean, o_sem = (overlap[c].to_numpy() for c in ("t", "sim_mean", "sim_sem"))
+            o_t = overlap["t"].to_numpy()
+            o_mean, o_sem = _finite_or_nan(overlap["sim_mean"]), _finite_or_nan(overlap["sim_sem"])
             curve_ax.fill_between(o_t, o_mean - o_sem, o_mean + o_sem, color=OVERLAP_COLOR, alpha=0.18, linewidth=0)
             curve_ax.plot(
                 o_t,
@@ -381,15 +384,18 @@ def plot_learning_curve(
             )
         curve_ax.plot(
             t,
-            test["theory_mean"].to_numpy(),
+            theory,
             color=THEORY_COLOR,
             dashes=THEORY_DASHES,
             label="theory",
         )
 
         curve_ax.set_xscale("log")
-        if np.all(np.concatenate([mean - sem, test["theory_mean"].to_numpy()]) > 0):
-            curve_ax.set_yscale("log")
+        positive = np.concatenate([mean, theory])
+        positive = positive[np.isfinite(positive)]
+        if positive.size and np.all(positive > 0):
+            # A band reaching below zero is clipped at the bottom of the log axis, not dropped.
+            curve_ax.set_yscale("log", nonpositive="clip")
         curve_ax.set_ylabel(EPS_LABEL)
         # With per-seed curves a second legend sits upper right; a falling curve leaves lower left free.
         curve_ax.legend(loc="lower left" if trajectories is not None else "best")
@@ -430,6 +436,11 @@ def plot_learning_curve(
         residual_ax.set_ylabel(r"$z$")
         fig.align_ylabels(axes)
     return fig
+
+
+def _finite_or_nan(column: pd.Series) -> np.ndarray:
+    values = column.to_numpy(dtype=float)
+    return np.where(np.isfinite(values), values, np.nan)
 
 
 def _draw_seed_pairs(ax: Axes, trajectories: pd.DataFrame, seeds_shown: int) -> None:
@@ -648,6 +659,24 @@ def _pm(value: float, error: float) -> str:
     return rf"({mantissa} \pm {spread})\times 10^{{{exponent}}}"
 
 
+def _gap_label(verdict: dict) -> str:
+    """Axis label in the trade's notation from the observable whose gap was measured."""
+    observable = str(verdict.get("observable", ""))
+    match = _OBSERVABLE_RE.match(observable)
+    if observable == "test_error":
+        symbol = EPS_LABEL
+    elif observable == "overlap_error":
+        symbol = r"$\varepsilon_g(Q,R,T)$"
+    elif match:
+        indices = ",".join(part for part in match.groups()[1:] if part is not None)
+        symbol = rf"${match.group(1)}_{{{indices}}}$"
+    else:
+        # An explicit short label is used as given; the long explanation belongs on the page.
+        label = str(verdict.get("gap_label", ""))
+        return label if label and len(label) <= 30 else "gap"
+    return f"gap of {symbol}"
+
+
 def plot_scaling(verdict: dict, *, size: FigureSize = FigureSize()) -> Figure:
     """Gap against N (log-log) with the fitted law a N^-b + c, the offset band and the verdict."""
     sizes = np.asarray(verdict["sizes"], dtype=float)
@@ -709,7 +738,7 @@ def plot_scaling(verdict: dict, *, size: FigureSize = FigureSize()) -> Figure:
             ax.plot([], [], " ", label=offset_label + " (below range)")
             ax.set_ylim(low, high)
         ax.set_xlabel(r"$N$")
-        ax.set_ylabel(verdict.get("gap_label", "gap"))
+        ax.set_ylabel(_gap_label(verdict))
         ax.legend(loc="best")
         ax.set_title(f"finite-size scaling: {verdict['verdict']}", color=INK)
     return fig
@@ -827,7 +856,7 @@ def plot_sweep(
                     ax.set_title(_group_title(others, group_key), fontsize=7)
             for ax in axes.ravel()[panels:]:
                 ax.set_visible(False)
-            if image is not None:
+            if image is not None and len(finite):  # an all-empty map has no scale to show
                 bar = fig.colorbar(image, ax=axes.ravel().tolist(), shrink=0.9, pad=0.03)
                 bar.set_label(label)
                 bar.outline.set_linewidth(0.4)

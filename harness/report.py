@@ -35,6 +35,7 @@ from harness import figures
 from harness.results_store import atomic_write_text
 
 AGREEMENT_MAX_Z = figures.AGREEMENT_MAX_Z
+OVERVIEW_KEYS = 6
 SWEEP_PAGE_METRICS = ("final_test_error", "max_abs_z", "divergence_t")
 SWEEP_CAPTIONS = {
     "final_test_error": "final test error (simulation mean)",
@@ -425,13 +426,15 @@ def _badge(verdict: str) -> str:
 
 
 def varying_keys(runs: Sequence[RunEntry]) -> list[str]:
-    """Scenario keys whose value differs between runs (what a reader compares), in file order."""
+    """Scenario keys set in every run whose value differs between runs, in file order.
+
+    A key missing from some runs (written before the scenario schema grew) is not counted:
+    it says when a run was made, not what was varied.
+    """
     if len(runs) < 2:
         return []
-    keys: dict[str, None] = {}
-    for run in runs:
-        keys.update(dict.fromkeys(run.scenario))
-    return [key for key in keys if len({json.dumps(run.scenario.get(key), default=str) for run in runs}) > 1]
+    keys = [key for key in runs[0].scenario if all(key in run.scenario for run in runs[1:])]
+    return [key for key in keys if len({json.dumps(run.scenario[key], default=str) for run in runs}) > 1]
 
 
 def _figure_html(files: dict[str, Path], root: Path, captions: dict[str, str]) -> str:
@@ -570,20 +573,22 @@ def _overview(runs: Sequence[RunEntry], varying: Sequence[str], current: tuple[s
         return f'<th class="{css}">{sort.label_html} {"".join(links)}</th>'
 
     by_slug = {sort.slug: sort for sort in SORT_KEYS}
-    heads = [header(by_slug["run-id"], "text")]
+    # Run, verdict and the sortable metrics first; the scenario keys that differ follow
+    # (at most OVERVIEW_KEYS of them; every run card lists its full scenario).
+    shown = list(varying)[:OVERVIEW_KEYS]
+    heads = [header(by_slug["run-id"], "text"), '<th class="text">verdict</th>']
+    heads += [header(sort) for sort in SORT_KEYS[1:]]
     heads += [
         f'<th class="text" title="{_e(key)}"><span class="key">{_e(label)}</span></th>'
-        for key, label in _short_keys(varying).items()
+        for key, label in _short_keys(shown).items()
     ]
-    heads += [header(sort) for sort in SORT_KEYS[1:]]
-    heads.append('<th class="text">verdict</th>')
     body = []
     for run in runs:
         cells = [f'<td class="text mono"><a href="#{_anchor("run", run.run_id)}">{_e(run.run_id)}</a></td>']
-        cells += [f'<td class="text mono">{_e(_fmt(run.scenario.get(key)))}</td>' for key in varying]
+        cells.append(f'<td class="text">{_badge(run.verdict)}</td>')
         for sort in SORT_KEYS[1:]:
             cells.append(f"<td>{_metric_text(sort.slug.replace('-', '_'), float(sort.value(run)))}</td>")
-        cells.append(f'<td class="text">{_badge(run.verdict)}</td>')
+        cells += [f'<td class="text mono">{_e(_fmt(run.scenario.get(key)))}</td>' for key in shown]
         body.append(f"<tr>{''.join(cells)}</tr>")
     return f'<div class="scroll">{_table("".join(heads), body, css="overview")}</div>'
 

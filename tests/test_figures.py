@@ -105,6 +105,17 @@ def test_overlap_curve_drawn_only_when_it_differs(tmp_path):
     assert len(_plain_lines(figures.plot_learning_curve(summary).axes[0])) == 3
 
 
+def test_learning_curve_survives_a_diverged_mean(tmp_path):
+    summary = figures.read_summary(write_run_folder(tmp_path, "run-inf"))
+    late = (summary["observable"] == "test_error") & (summary["t"] == summary["t"].max())
+    summary.loc[late, ["sim_mean", "sim_sem", "z"]] = [np.inf, np.nan, np.nan]
+    curve_ax, residual_ax = figures.plot_learning_curve(summary, show_overlap=False).axes
+    assert curve_ax.get_yscale() == "log"
+    mean_line = _plain_lines(curve_ax)[0]
+    assert np.isnan(mean_line.get_ydata()[-1]) and np.all(np.isfinite(mean_line.get_ydata()[:-1]))
+    assert np.all(np.isfinite(curve_ax.get_ylim())) and np.all(np.isfinite(residual_ax.get_ylim()))
+
+
 def test_per_seed_curves_come_in_pairs(tmp_path):
     run = write_run_folder(tmp_path, "run-d", seeds=5)
     summary = figures.read_summary(run)
@@ -184,6 +195,13 @@ def test_scaling_plot_is_log_log_with_fitted_law_and_verdict(tmp_path):
     low, _ = ax.get_ylim()
     assert low < c - dc  # the offset band is in view
     assert len(ax.containers) == 1 and len(ax.containers[0][0].get_xdata()) == len(verdict["sizes"])
+
+
+def test_scaling_gap_label_names_the_observable():
+    base = {"gap_label": "gap of test_error (rms over t of theory - simulation)"}
+    assert figures._gap_label({**base, "observable": "test_error"}) == r"gap of $\varepsilon_g$"
+    assert figures._gap_label({**base, "observable": "R[1,0]"}) == "gap of $R_{1,0}$"
+    assert figures._gap_label(base) == "gap"  # too long for an axis at column width
 
 
 def test_scaling_folder_missing_key_is_reported(tmp_path):
