@@ -123,6 +123,8 @@ COMMAND_MODULES: list[tuple[str, str]] = [
     ("harness.figures_cli", "add_figure_commands"),
     ("harness.generator_cli", "add_generator_commands"),
     ("harness.sweep", "add_sweep_commands"),
+    ("harness.scaling", "add_scale_command"),
+    ("harness.baselines", "add_baseline_commands"),
 ]
 
 
