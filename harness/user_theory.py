@@ -207,7 +207,7 @@ def read_theory_file(path: Path, scenario: Scenario) -> tuple[np.ndarray, dict[s
     non-numeric / NaN / infinite values, t not strictly increasing, and a time range that
     does not cover ``[0, final time]`` of the run.
     """
-    where = f"theory file '{path}'"
+    where = f"theory file {str(path)!r}"  # repr: a path never breaks the one-line message
     suffix = path.suffix.lower()
     if suffix not in FILE_SUFFIXES:
         raise InputError(f"{where}: unsupported format {suffix or '(no suffix)'!r}; expected .csv, .parquet or .pq")
