@@ -87,7 +87,9 @@ class RunEntry:
 
     @property
     def verdict(self) -> str:
-        max_z = self.test_metric("max_abs_z")
+        # the adjusted z accounts for the few seeds behind each SEM (harness.comparison)
+        column = "max_abs_z_adjusted" if "max_abs_z_adjusted" in self.metrics else "max_abs_z"
+        max_z = self.test_metric(column)
         if not math.isfinite(max_z):
             return "no verdict"
         return "agree" if max_z <= AGREEMENT_MAX_Z else "disagree"
