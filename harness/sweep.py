@@ -87,7 +87,7 @@ STALE_PARTIAL_S = 300.0
 JOBQUEUE_KINDS = ("slurm", "pbs")
 
 
-class SweepError(InputError):
+class SweepError(scenario_lib.ScenarioError):
     """A sweep file or one of its points is invalid; the message is one line."""
 
 
