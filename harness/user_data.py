@@ -82,13 +82,16 @@ def check_data_kind(scenario: Scenario) -> None:
 
 
 _CACHE: dict[tuple[str, str], DataModel] = {}
+_CACHE_SIZE = 2
+"""Built models kept: a run builds its data model twice (simulation, then the theory's initial
+state); caching calls the factory, and estimates moments, once. Small: models may hold N x N arrays."""
 
 
 def build_user_data_model(scenario: Scenario, dtype: Any) -> DataModel:
     """Adapt the user's factory into a :class:`~harness.data_models.DataModel` (cached per scenario)."""
     cache_key = (run_id(scenario), jnp.dtype(dtype).name)
     if cache_key not in _CACHE:
-        if len(_CACHE) >= 8:
+        if len(_CACHE) >= _CACHE_SIZE:
             _CACHE.pop(next(iter(_CACHE)))
         _CACHE[cache_key] = _build(scenario, dtype)
     return _CACHE[cache_key]
