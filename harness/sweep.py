@@ -254,7 +254,8 @@ def compute_point(task: PointTask):
     from harness.pipeline import compute_run
 
     with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # diverged seeds are in the manifest
+        # Diverged seeds are recorded in the manifest; the client reports them.
+        warnings.filterwarnings("ignore", message=".*seeds diverged", category=RuntimeWarning)
         return compute_run(task.scenario, extra_manifest=task.extra_manifest, checkpoint_dir=task.checkpoint_dir)
 
 
@@ -293,6 +294,11 @@ class LocalExecutor:
 
     def describe(self) -> str:
         return f"{self.processes} local worker process{'es' if self.processes != 1 else ''}"
+
+    def prepare(self, points: int) -> None:
+        """Start no more processes than there are points to compute."""
+        if self._pool is None:
+            self.processes = max(1, min(self.processes, points))
 
     def submit(self, task: PointTask) -> concurrent.futures.Future:
         if self._pool is None:
@@ -355,6 +361,9 @@ class DaskExecutor:
 
     def describe(self) -> str:
         return self.description
+
+    def prepare(self, points: int) -> None:
+        """The cluster's size is the user's choice; nothing to adapt."""
 
     def submit(self, task: PointTask):
         key = f"harness-point-{task.index}-{task.run_id}-{self.token}"
@@ -628,6 +637,7 @@ def run_sweep(
                 checkpoints = str(checkpoint_folder(out_dir, plan.run_ids[i]))
                 return PointTask(i, plan.run_ids[i], plan.scenarios[i], extra, checkpoints)
 
+            executor.prepare(len(todo))
             pending = {executor.submit(task(i)): i for i in todo}
             lost_attempts: dict[int, int] = {}
             done = failed = 0
@@ -655,6 +665,10 @@ def run_sweep(
                         if outcome.kind == "ok":
                             status[i] = "computed"
                             done += 1
+                            diverged = outcome.value.manifest.get("diverged_count", 0)
+                            if diverged:
+                                stream.write(f"harness: warning: sweep point {i} ({describe_point(plan.points[i])}): "
+                                             f"{diverged} seed(s) diverged and left the averages\n")
                         else:
                             status[i] = "failed"
                             errors[i] = outcome.value

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import signal
 import subprocess
 import sys
@@ -397,10 +398,14 @@ def test_a_failing_point_is_reported_and_the_others_complete(tmp_path, monkeypat
     path = _write(tmp_path / "s.toml", TINY + '[theory]\nsource = "python:theory_until_one:predict"\n'
                   '[sweep]\n"sgd.learning_rate" = [0.5, 2.0]\n')
     out = tmp_path / "out"
-    assert main(["sweep", str(path), "--out", str(out), "--quiet"]) == 1
+    assert main(["sweep", str(path), "--out", str(out), "--processes", "1"]) == 1
     captured = capsys.readouterr()
     assert "sweep point 1 (sgd.learning_rate=2.0) failed: " in captured.err
     assert "no theory beyond eta = 1" in captured.err
+    # The progress line counts done / running / failed and, once a point is finished, the time left.
+    progress = [line for line in captured.err.splitlines() if line.startswith("sweep ") and "running" in line]
+    assert any("1 done" in line or "1 failed" in line for line in progress)
+    assert any(re.search(r"1 done, 1 running, 0 failed, 1 left .*~\d+s left", line) for line in progress)
     assert "1 computed, 0 already complete, 1 failed" in captured.out
     record = json.loads((out / "sweep.json").read_text())
     assert record["status"] == ["computed", "failed"] and "no theory beyond eta = 1" in record["errors"]["1"]
