@@ -38,6 +38,11 @@ class DataModel(NamedTuple):
     # True: sample returns (x, y[:, None]), the labels themselves, and there is no teacher
     # (user data models, harness.user_data); R and T are then NaN.
     labels_given: bool = False
+    # Latent models (harness.latent_models): spectra(data_params, w, wt) -> per-seed
+    # eigen-projections of Omega (notes, section 4), computed lazily; describe(data_params)
+    # -> a JSON-able dict for the run manifest (e.g. Monte Carlo standard errors).
+    spectra: Callable[[Any, Array, Array], Any] | None = None
+    describe: Callable[[Any], dict[str, Any]] | None = None
 
 
 def gaussian_model(input_dim: int, dtype: Any) -> DataModel:
@@ -70,7 +75,16 @@ def _build_user(scenario: Scenario, dtype: Any) -> DataModel:
     return build_user_data_model(scenario, dtype)
 
 
-BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {"gaussian": _build_gaussian, "python": _build_user}
+def _build_latent(scenario: Scenario, dtype: Any) -> DataModel:
+    from harness.latent_models import build_latent_model  # lazily: it imports this module
+
+    return build_latent_model(scenario, dtype)
+
+
+BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {
+    "gaussian": _build_gaussian, "python": _build_user,
+    "latent": _build_latent, "deep_latent": _build_latent, "trained_latent": _build_latent,
+}
 
 
 def build_data_model(scenario: Scenario, dtype: Any) -> DataModel:

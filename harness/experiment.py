@@ -43,6 +43,7 @@ class ExperimentResult(NamedTuple):
     diverged_at: np.ndarray  # [S]
     timings: dict[str, float]
     resumed_from_step: int = 0
+    data_notes: dict | None = None  # the data model's description of its instances (manifest "data_model")
 
 
 def simulate(
@@ -157,7 +158,8 @@ def run_experiment(
         "theory_s": theory_s,
         "compile_s": simulated.compile_s,
     }
-    return ExperimentResult(trajectories, simulated.diverged_at, timings, simulated.resumed_from_step)
+    data_notes = None if sim.model.describe is None else sim.model.describe(start.data_params)
+    return ExperimentResult(trajectories, simulated.diverged_at, timings, simulated.resumed_from_step, data_notes)
 
 
 def _observables(scenario: Scenario) -> list[str]:

@@ -62,9 +62,11 @@ def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
     ops = iid_theory.OrderParameters(
         np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
     )
+    spectra = sim.model.spectra
     return InitialState(
         np.asarray(seed_indices), ops, np.asarray(teacher_v, np.float64),
         np.asarray(wt64), np.asarray(w64), data_params,
+        None if spectra is None else spectra(data_params, np.asarray(w64), np.asarray(wt64)),
     )
 
 
@@ -100,7 +102,16 @@ def builtin_iid(scenario: Scenario, start: InitialState, times: np.ndarray, **op
 
 TheoryFn = Callable[..., Prediction]
 
-BUILTIN_THEORIES: dict[str, TheoryFn] = {"gaussian": builtin_iid}
+def _builtin_latent(scenario: Scenario, start: InitialState, times: np.ndarray, **options: Any) -> Prediction:
+    from harness.latent_theory import builtin_latent  # lazily: it imports this module
+
+    return builtin_latent(scenario, start, times, **options)
+
+
+BUILTIN_THEORIES: dict[str, TheoryFn] = {
+    "gaussian": builtin_iid, "latent": _builtin_latent, "deep_latent": _builtin_latent,
+    "trained_latent": _builtin_latent,
+}
 
 
 def _builtin(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
-from harness.activations import NETWORK_ACTIVATIONS
+from harness.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
 from harness.errors import InputError
 
 Scenario = dict[str, dict[str, Any]]
@@ -81,11 +81,27 @@ def _unit_interval(value: float) -> str | None:
     return None if 0.0 <= value < 1.0 else "a number in [0, 1)"
 
 
+def _positive_list(values: list[int]) -> str | None:
+    return None if all(v >= 1 for v in values) else "a list of integers >= 1"
+
+
+def _activation_names(values: list[str]) -> str | None:
+    return None if all(v in ACTIVATIONS for v in values) else "a list of names from " + ", ".join(ACTIVATIONS)
+
+
+def _nonempty(value: str) -> str | None:
+    return None if value.strip() else "a non-empty name"
+
+
+def _at_least_thousand(value: int) -> str | None:
+    return None if value >= 1000 else "an integer >= 1000"
+
+
 def _at_least_two(value: int) -> str | None:
     return None if value >= 2 else "an integer >= 2"
 
 
-DATA_KINDS: tuple[str, ...] = ("gaussian",)
+DATA_KINDS: tuple[str, ...] = ("gaussian", "latent", "deep_latent", "trained_latent")
 """Built-in data kinds; ``python:package.module:factory`` names a user data model."""
 
 
@@ -107,6 +123,16 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "data": {
         "kind": Key("str", "gaussian", "input distribution", _data_kind),
         "input_dim": Key("int", 500, "N, the input dimension", _positive),
+        # latent-variable kinds (harness.latent_models; theory notes, section 4)
+        "latent_dim": Key("int", 0, "D, latent dimension of latent kinds (0: input_dim // 2)", _nonnegative_int),
+        "feature_map": Key("str", "sign", "f in x = f(F^T c / sqrt(D)) - E f (latent kinds)", _one_of(*ACTIVATIONS)),
+        "layers": Key("int_list", [], "hidden widths of the deep_latent generator, latent side first", _positive_list),
+        "layer_activations": Key("str_list", [], "deep_latent: activation after each layer, len(layers) + 1 "
+                                 "names (empty: feature_map everywhere)", _activation_names),
+        "moment_samples": Key("int", 100000, "Monte Carlo samples for Omega and Phi (deep_latent, trained_latent)",
+                              _at_least_thousand),
+        "generator": Key("str", "digits", "trained_latent: name of a generator made by 'harness generator train'",
+                         _nonempty),
     },
     "teacher": {
         "hidden": Key("int", 2, "M, teacher hidden units", _positive),
@@ -155,6 +181,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "source": Key("str", "builtin", "where theory comes from", _theory_source),
         "rtol": Key("float", 1e-6, "ODE solver relative tolerance", _positive_finite),
         "atol": Key("float", 1e-9, "ODE solver absolute tolerance", _positive_finite),
+        "limit": Key("str", "finite", "latent theory: exact finite-N equations or the thermodynamic limit",
+                     _one_of("finite", "infinite")),
+        "bins": Key("int", 200, "eigenvalue bins of the thermodynamic-limit latent theory", _at_least_two),
     },
 }
 
@@ -174,6 +203,15 @@ def _check_user_sources(s: Scenario) -> None:
 # Cross-key rules registered by other modules (latent data, optimizers, ...). Each takes
 # the resolved scenario and raises ScenarioError on a problem.
 EXTRA_CHECKS: list[Callable[[Scenario], None]] = [_check_user_sources]
+
+
+def _check_latent_keys(s: Scenario) -> None:
+    from harness.latent_models import check_latent_keys  # lazily: it imports this module
+
+    check_latent_keys(s)
+
+
+EXTRA_CHECKS.append(_check_latent_keys)
 
 # ----------------------------------------------------------------------- resolution
 
