@@ -68,12 +68,10 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any, NamedTuple, TextIO
 
-import pandas as pd
-
 from harness import scenario as scenario_lib
 from harness.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.errors import InputError
-from harness.results_store import atomic_write_json, is_complete_run, read_index
+from harness.results_store import append_index_row, atomic_write_json, is_complete_run, read_index
 
 SWEEP_MODES = ("grid", "zip")
 MAX_POINTS = 100_000
@@ -561,15 +559,56 @@ def _remove_stale_partials(out_dir: Path, older_than_s: float = STALE_PARTIAL_S)
                 continue
 
 
-def _reindex(out_dir: Path, run_id: str, scenario: scenario_lib.Scenario) -> None:
-    """Restore the index row of a complete run folder (the writer died between the two)."""
-    from harness.pipeline import index_row
-    from harness.results_store import append_index_row
+def _take_stock(plan: SweepPlan, out_dir: Path, status: list[str]) -> list[int]:
+    """Mark the points already stored in ``out_dir`` as reused; return the others' indices.
 
-    folder = out_dir / run_id
-    summary = pd.read_parquet(folder / "summary.parquet")
-    metrics = pd.read_parquet(folder / "metrics.parquet")
-    append_index_row(out_dir, index_row(run_id, scenario, summary, metrics))
+    A point is stored when its folder is complete *and* its row is in ``runs.parquet``.
+    If the client was killed between the two, the row it had set aside is added now; a
+    complete folder without any row to add (written by someone else) is computed again
+    and replaced. Also removes stale temporary files and the checkpoints of stored runs.
+    """
+    _remove_stale_partials(out_dir)
+    indexed = _indexed_run_ids(out_dir)
+    todo: list[int] = []
+    for i, run_id in enumerate(plan.run_ids):
+        complete = is_complete_run(out_dir / run_id)
+        set_aside = _set_aside_row_path(out_dir, run_id)
+        if complete and run_id not in indexed and set_aside.is_file():
+            try:
+                append_index_row(out_dir, json.loads(set_aside.read_text()))
+                indexed.add(run_id)
+            except (OSError, ValueError):
+                pass  # unreadable: computed again below
+        if complete and run_id in indexed:
+            discard_checkpoint(checkpoint_folder(out_dir, run_id))
+            status[i] = "reused"
+        else:
+            todo.append(i)
+    return todo
+
+
+def _set_aside_row_path(out_dir: Path, run_id: str) -> Path:
+    """The index row of a point being stored, kept until the row is in ``runs.parquet``."""
+    return checkpoint_folder(out_dir, run_id) / "index_row.json"
+
+
+def _indexed_run_ids(out_dir: Path) -> set[str]:
+    index = read_index(out_dir)
+    return set(index["run_id"]) if "run_id" in index.columns else set()
+
+
+def _store(computed, out_dir: Path) -> None:
+    """Write a computed point unless an identical run was stored meanwhile by another writer."""
+    from harness.pipeline import store_run
+
+    folder = out_dir / computed.run_id
+    if is_complete_run(folder) and computed.run_id in _indexed_run_ids(out_dir):
+        discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
+        return
+    # Set the row aside first: if this process dies after publishing the folder but
+    # before adding the row, the next run of the sweep adds it without recomputing.
+    atomic_write_json(_set_aside_row_path(out_dir, computed.run_id), computed.index_row)
+    store_run(computed, out_dir, force=folder.exists())  # its checkpoint folder goes last
 
 
 def _sweep_record(plan: SweepPlan, status: list[str], errors: dict[int, str], executor: str) -> dict[str, Any]:
@@ -603,7 +642,6 @@ def run_sweep(
     the end. Failing points are reported on ``stream`` and in ``sweep.json``; they do
     not stop the others.
     """
-    from harness.pipeline import store_run
     from harness.progress import Progress
 
     stream = stream if stream is not None else sys.stderr
@@ -613,18 +651,7 @@ def run_sweep(
     errors: dict[int, str] = {}
     with _sweep_lock(out_dir):
         try:
-            _remove_stale_partials(out_dir)
-            index = read_index(out_dir)
-            indexed = set(index["run_id"]) if "run_id" in index.columns else set()
-            todo: list[int] = []
-            for i, run_id in enumerate(plan.run_ids):
-                if is_complete_run(out_dir / run_id):
-                    if run_id not in indexed:
-                        _reindex(out_dir, run_id, plan.scenarios[i])
-                    discard_checkpoint(checkpoint_folder(out_dir, run_id))
-                    status[i] = "reused"
-                else:
-                    todo.append(i)
+            todo = _take_stock(plan, out_dir, status)
             record_path = out_dir / SWEEP_JSON
             atomic_write_json(record_path, _sweep_record(plan, status, errors, executor.describe()))
             last_record = time.monotonic()
@@ -656,10 +683,7 @@ def run_sweep(
                             outcome = Outcome("error", f"{outcome.value} while computing it, {MAX_LOST_ATTEMPTS} times")
                         if outcome.kind == "ok":
                             try:
-                                if is_complete_run(out_dir / plan.run_ids[i]):  # another writer was quicker
-                                    _reindex(out_dir, plan.run_ids[i], plan.scenarios[i])
-                                else:
-                                    store_run(outcome.value, out_dir)
+                                _store(outcome.value, out_dir)
                             except OSError as error:
                                 outcome = Outcome("error", f"cannot store it: {_error_text(error)}")
                         if outcome.kind == "ok":
