@@ -764,11 +764,12 @@ def add_sweep_commands(subparsers) -> None:
         "sweep", help="run every point of a sweep file, in parallel, resuming whatever is already complete"
     )
     sweep.add_argument("sweep_file", help="scenario TOML file with a [sweep] table of dotted keys and value lists")
-    sweep.add_argument("--out", type=Path, default=None, help="results folder (default: results/<sweep file name>/)")
+    sweep.add_argument("--out", type=Path, default=None, metavar="DIR",
+                       help="results folder (default: results/<sweep file name>/)")
     where = sweep.add_mutually_exclusive_group()
-    where.add_argument("--processes", type=_positive_int, default=None,
+    where.add_argument("--processes", type=_positive_int, default=None, metavar="N",
                        help="local worker processes without any server (default: one per core)")
-    where.add_argument("--workers", type=_positive_int, default=None,
+    where.add_argument("--workers", type=_positive_int, default=None, metavar="N",
                        help="start a dask LocalCluster with N single-threaded worker processes")
     where.add_argument("--scheduler", metavar="ADDRESS", default=None,
                        help="submit to a running dask scheduler, e.g. tcp://10.0.0.5:8786")
