@@ -342,8 +342,12 @@ class LocalExecutor:
             process.join(timeout=5)
 
     def close(self) -> None:
+        """Let idle workers exit; stop busy ones (an interrupted or failed sweep)."""
         if self._pool is not None:
-            self._terminate(self._pool)
+            if any(not future.done() for future in self._origin):
+                self._terminate(self._pool)
+            else:
+                self._pool.shutdown(wait=True)
             self._pool = None
 
 
