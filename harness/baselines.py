@@ -597,7 +597,12 @@ def _cmd_save(args: argparse.Namespace) -> int:
         for name in names:
             if name not in BUILTIN_BASELINES:
                 raise InputError(f"--builtin: unknown baseline {name!r}; known: {', '.join(BUILTIN_BASELINES)}")
+            if not args.builtin and not args.force and (directory / name).exists():
+                print(f"kept {directory / name} (--force re-solves it)")
+                continue  # a bare --builtin adds the missing ones
             jobs.append((name, scenario_lib.resolve(BUILTIN_BASELINES[name])))
+        if not jobs:
+            return 0
     if not jobs:
         if not args.force:
             raise InputError(
@@ -652,7 +657,8 @@ def add_baseline_commands(subparsers: argparse._SubParsersAction) -> None:
     save.add_argument("--name", help="folder name for a single SCENARIO (default: its file stem)")
     save.add_argument(
         "--builtin", nargs="*", metavar="NAME",
-        help="the project's own baselines (all, or the NAMEs given): " + ", ".join(BUILTIN_BASELINES),
+        help="the project's own baselines: the NAMEs given, or every missing one (all with --force): "
+        + ", ".join(BUILTIN_BASELINES),
     )
     save.add_argument("--force", action="store_true", help="replace existing baselines (their tolerances.toml is kept)")
     save.set_defaults(handler=_cmd_save)

@@ -140,7 +140,8 @@ def test_verdict_rule_on_known_laws():
     coarse = _decide(falling, np.full(4, 2e-5), tolerance=0.001)
     assert coarse.verdict == "inconclusive"
     assert any("seeds" in line for line in coarse.advice)
-    assert coarse.forecast["seeds_needed"] > 8
+    low, high = coarse.forecast["seeds_needed"]
+    assert 8 < low <= high
 
 
 def test_a_rising_gap_is_never_consistent():
