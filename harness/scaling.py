@@ -54,8 +54,10 @@ slowly decaying amplitude and every verdict would be inconclusive.
 Caveat (plateaus): when the run starts near a symmetric saddle (the K = M = 2 plateau from
 a small initialisation), the escape time is set by an asymmetry of order N^-1/2 that SGD
 noise and the initial draw share in N-independent proportion, so the paired difference at
-the escape need not decay like a power of N at fixed times. Scaling studies are cleanest on
-scenarios without such an escape inside the time window.
+the escape need not decay like a power of N at fixed times. This is a caution, not a
+measured failure (the default K = M = 2 erf scenario at eta = 1, t = 60, N = 100..800 and
+8 seeds came out consistent), but scaling studies are cleanest on scenarios without such an
+escape inside the time window.
 
 The covariance matrix of curve_fit (``sigma = sigma_U``, ``absolute_sigma = True``) is used
 for the amplitude and the exponent only: it is meaningless at a bound, and at a = 0 the
@@ -91,8 +93,8 @@ to the observable's own size.
 * ``inconclusive``: anything else. The advice then says what would settle it, from an
   "Asimov" forecast: take the fitted law as the truth, shrink the errors, and redo the
   profile. Errors shrink like 1/sqrt(seeds) when a gap is present, so with seeds multiplied
-  by k every profile chi^2 difference is multiplied by k; settling needs k * chi2_A(0) >= 9 (an offset
-  shows at 3 sigma) or k * chi2_A(tau) >= 4 (an offset above tau is excluded). When the gap
+  by k every profile chi^2 difference is multiplied by k; settling needs k * chi2_A(0) >= 9
+  (an offset shows at 3 sigma) or k * chi2_A(tau) >= 4 (an offset above tau is excluded). When the gap
   is pure noise sigma_U falls like 1/S instead and sqrt(k) times the seeds suffice, so the
   advice gives the range sqrt(k) S .. k S. Extra sizes (2 and 4 times the largest) are
   forecast with sigma_U(N) extrapolated by a power law in N.
