@@ -80,10 +80,10 @@ def _small(**sections: dict[str, Any]) -> dict[str, Any]:
 
 BUILTIN_BASELINES: dict[str, dict[str, Any]] = {
     "erf-k2m2": _small(sgd={"learning_rate": 1.0, "time": 20.0}),
-    "erf-trained-second-layer": _small(
-        student={"hidden": 3, "train_second_layer": True}, sgd={"learning_rate": 0.8, "time": 10.0}
+    "erf-trained-second-layer-noise": _small(
+        student={"hidden": 3, "train_second_layer": True}, teacher={"noise_std": 0.3},
+        sgd={"learning_rate": 0.8, "time": 10.0},
     ),
-    "erf-label-noise": _small(teacher={"noise_std": 0.3}, sgd={"learning_rate": 0.5, "time": 10.0}),
     "linear-k1m1": _small(
         student={"hidden": 1, "activation": "linear"}, teacher={"hidden": 1, "activation": "linear"},
         sgd={"learning_rate": 0.5, "time": 5.0},
@@ -95,6 +95,13 @@ BUILTIN_BASELINES: dict[str, dict[str, Any]] = {
     "relu-quadrature": _small(
         student={"hidden": 1, "activation": "relu"}, teacher={"hidden": 1, "activation": "relu"},
         sgd={"learning_rate": 0.3, "time": 5.0},
+    ),
+    "latent-sign-finite": _small(
+        data={"kind": "latent", "latent_dim": 25, "feature_map": "sign"}, sgd={"learning_rate": 0.5, "time": 5.0}
+    ),
+    "latent-erf-limit": _small(
+        data={"kind": "latent", "latent_dim": 25, "feature_map": "erf"}, sgd={"learning_rate": 0.5, "time": 5.0},
+        theory={"limit": "infinite", "bins": 40},
     ),
 }
 
@@ -316,10 +323,22 @@ def solve_theory(scenario: dict, start: Any | None = None) -> tuple[np.ndarray, 
 
 
 def _leaves(start: Any) -> tuple[list[np.ndarray], Any]:
+    """The arrays of an InitialState, without its spectrum (derived data, rebuilt on load)."""
     import jax
 
-    leaves, treedef = jax.tree_util.tree_flatten(start)
+    leaves, treedef = jax.tree_util.tree_flatten(start._replace(spectrum=None))
     return [np.asarray(leaf) for leaf in leaves], treedef
+
+
+def _rebuild_start(sim: Any, treedef: Any, leaves: list[np.ndarray]) -> Any:
+    """An InitialState from stored arrays, its spectrum recomputed as initial_state does."""
+    import jax
+
+    start = jax.tree_util.tree_unflatten(treedef, leaves)
+    spectra = sim.model.spectra
+    if spectra is not None:
+        start = start._replace(spectrum=spectra(start.data_params, start.student_w, start.teacher_w))
+    return start
 
 
 def save_baseline(scenario: dict, directory: str | Path, name: str, *, force: bool = False) -> Path:
@@ -429,7 +448,6 @@ def compare(
 
 def check_baseline(baseline: Baseline, override: Tolerance | None = None) -> CheckResult:
     """Re-solve one baseline from its stored initial conditions and compare."""
-    import jax
 
     from harness import simulation
     from harness.paired_theory import initial_state
@@ -437,7 +455,8 @@ def check_baseline(baseline: Baseline, override: Tolerance | None = None) -> Che
     problems: list[str] = []
     notes: list[str] = []
     scenario = baseline.scenario
-    drawn = initial_state(simulation.make_simulator(scenario), np.arange(scenario["run"]["seeds"]))
+    sim = simulation.make_simulator(scenario)
+    drawn = initial_state(sim, np.arange(scenario["run"]["seeds"]))
     drawn_leaves, treedef = _leaves(drawn)
     shapes_now = [leaf.shape for leaf in drawn_leaves]
     shapes_stored = [leaf.shape for leaf in baseline.start_leaves]
@@ -457,7 +476,7 @@ def check_baseline(baseline: Baseline, override: Tolerance | None = None) -> Che
             f"the initial conditions drawn now differ from the stored ones by up to {moved:.3g} "
             "(random stream or initial-state code changed); solving from the stored ones"
         )
-    start = jax.tree_util.tree_unflatten(treedef, baseline.start_leaves)
+    start = _rebuild_start(sim, treedef, baseline.start_leaves)
     t, _, now = solve_theory(scenario, start)
     if len(t) != len(baseline.t) or not np.allclose(t, baseline.t, rtol=TIME_MATCH_RTOL, atol=0.0):
         problems.append(
