@@ -33,6 +33,11 @@ through the square root gives asymmetric errors (``gap_errs_low``/``gap_errs_hig
 itself when U is within one sigma of zero, sqrt(sigma_U) (the resolution) when U <= 0.
 The fit and the verdict use U itself.
 
+Which observable: ``test_error`` (the default) carries the noise of each seed's finite
+held-out set, constant in time for a seed and not shrinking with N; U removes it from the
+mean but not from the error bars. ``--observable overlap_error`` (eps_g from the simulation's
+own order parameters, notes section 5) tests the dynamics without that noise.
+
 The fit
 -------
 With G(N) = a N^-b + c the measurements are U_i ~ Normal(G(N_i)^2, sigma_i^2), so
@@ -804,7 +809,8 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
     scale.add_argument("--out", type=Path, default=Path("results"), help="results folder (default: results/)")
     scale.add_argument(
         "--observable", default=DEFAULT_OBSERVABLE,
-        help=f"observable whose gap is measured (default: {DEFAULT_OBSERVABLE})",
+        help=f"observable whose gap is measured (default: {DEFAULT_OBSERVABLE}; overlap_error avoids "
+        "the held-out set's noise)",
     )
     scale.add_argument(
         "--resolution", type=float, default=DEFAULT_RESOLUTION,
