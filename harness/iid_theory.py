@@ -17,6 +17,7 @@ evaluation times, one solve per seed, vmapped over seeds, in float64.
 
 from __future__ import annotations
 
+import functools
 from typing import NamedTuple
 
 import diffrax
@@ -95,24 +96,16 @@ def vector_field(dyn: Dynamics, state: tuple[Array, Array, Array], T: Array, tea
     return dQ, dR, dv
 
 
-def solve(
-    dyn: Dynamics,
-    initial: OrderParameters,
-    teacher_v: Array,
-    times: np.ndarray,
-    *,
-    rtol: float,
-    atol: float,
-    max_steps: int = 1_000_000,
-) -> OrderParameters:
-    """Integrate every seed's ODE from its own initial order parameters.
+@functools.cache
+def _compiled_solver(dyn: Dynamics, rtol: float, atol: float, max_steps: int):
+    """The vmapped, jitted solve for one set of static settings, built once per process.
 
-    ``initial`` and ``teacher_v`` carry a leading seed axis; the result has shape
-    ``[seeds, times, ...]``. Float64 throughout.
+    Evaluation times are an argument, so runs with the same dynamics and tolerances (the
+    sizes of a finite-size scan, the points of a sweep, baseline checks) compile once per
+    shape instead of once per call.
     """
-    ts = jnp.asarray(times, jnp.float64)
 
-    def one(Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
+    def one(ts: Array, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
         term = diffrax.ODETerm(lambda t, y, args: vector_field(dyn, y, T, vt))
         solution = diffrax.diffeqsolve(
             term,
@@ -129,13 +122,43 @@ def solve(
         Q, R, v = solution.ys
         ok = solution.result == diffrax.RESULTS.successful
         nan = jnp.where(ok, 0.0, jnp.nan)  # a failed solve must not pass as a result
-        return Q + nan, R + nan, jnp.broadcast_to(T, (len(times),) + T.shape), v + nan
+        return Q + nan, R + nan, jnp.broadcast_to(T, ts.shape + T.shape), v + nan
 
+    return jax.jit(jax.vmap(one, in_axes=(None, 0, 0, 0, 0, 0)))
+
+
+def solve(
+    dyn: Dynamics,
+    initial: OrderParameters,
+    teacher_v: Array,
+    times: np.ndarray,
+    *,
+    rtol: float,
+    atol: float,
+    max_steps: int = 1_000_000,
+) -> OrderParameters:
+    """Integrate every seed's ODE from its own initial order parameters.
+
+    ``initial`` and ``teacher_v`` carry a leading seed axis; the result has shape
+    ``[seeds, times, ...]``. Float64 throughout.
+    """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
-    Q, R, T, v = jax.jit(jax.vmap(one))(
-        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
+    solver = _compiled_solver(dyn, float(rtol), float(atol), int(max_steps))
+    Q, R, T, v = solver(
+        f64(times), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
     )
     return OrderParameters(Q, R, T, v)
+
+
+@functools.cache
+def _compiled_overlap_error(K: int, student: str, teacher: str, leading_axes: int):
+    def one(Q: Array, R: Array, T: Array, v: Array, vt: Array) -> Array:
+        a = jnp.concatenate([v, -vt])
+        return generalisation_error(covariance(Q, R, T), a, K, student, teacher)
+
+    for _ in range(leading_axes):
+        one = jax.vmap(one)
+    return jax.jit(one)
 
 
 def overlap_error(dyn: Dynamics, ops: OrderParameters, teacher_v: Array) -> Array:
@@ -144,12 +167,6 @@ def overlap_error(dyn: Dynamics, ops: OrderParameters, teacher_v: Array) -> Arra
     Works for any leading axes (seeds, times); ``teacher_v`` has the leading axes of
     ``ops.v`` and a trailing M axis.
     """
-
-    def one(Q: Array, R: Array, T: Array, v: Array, vt: Array) -> Array:
-        a = jnp.concatenate([v, -vt])
-        return generalisation_error(covariance(Q, R, T), a, dyn.K, dyn.student, dyn.teacher)
-
-    for _ in range(ops.Q.ndim - 2):
-        one = jax.vmap(one)
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
-    return jax.jit(one)(f64(ops.Q), f64(ops.R), f64(ops.T), f64(ops.v), f64(teacher_v))
+    compiled = _compiled_overlap_error(dyn.K, dyn.student, dyn.teacher, ops.Q.ndim - 2)
+    return compiled(f64(ops.Q), f64(ops.R), f64(ops.T), f64(ops.v), f64(teacher_v))
