@@ -138,13 +138,21 @@ def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarra
 def run_experiment(
     scenario: Scenario, *, progress: ProgressFn | None = None, checkpoint_dir: str | Path | None = None
 ) -> ExperimentResult:
-    """Simulation and paired theory of a resolved scenario (checkpointed in ``checkpoint_dir``)."""
-    simulated = simulate(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
+    """Simulation and paired theory of a resolved scenario (checkpointed in ``checkpoint_dir``).
+
+    The theory is solved first: it needs only the initial conditions, and a user theory
+    that fails or returns the wrong shapes is then reported before any simulation time is
+    spent.
+    """
     sim = simulation.make_simulator(scenario)
-    start = initial_state(sim, simulated.seeds)
+    seeds = np.arange(scenario["run"]["seeds"])
+    times = simulation.evaluation_steps(scenario) / scenario["data"]["input_dim"]
+    start = initial_state(sim, seeds)
     started = time.perf_counter()
-    prediction = predict(scenario, start, simulated.t)
+    prediction = predict(scenario, start, times)
     theory_s = time.perf_counter() - started
+    simulated = simulate(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
+    assert np.array_equal(simulated.t, times) and np.array_equal(simulated.seeds, seeds)
     trajectories = Trajectories(
         simulated.seeds,
         simulated.t,
