@@ -151,6 +151,8 @@ def run_experiment(
     started = time.perf_counter()
     prediction = predict(scenario, start, times)
     theory_s = time.perf_counter() - started
+    data_notes = None if sim.model.describe is None else sim.model.describe(start.data_params)
+    del start  # latent models: the theory's copy of Omega and Phi ([S, N, N]) is not needed while simulating
     simulated = simulate(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
     assert np.array_equal(simulated.t, times) and np.array_equal(simulated.seeds, seeds)
     trajectories = Trajectories(
@@ -166,7 +168,6 @@ def run_experiment(
         "theory_s": theory_s,
         "compile_s": simulated.compile_s,
     }
-    data_notes = None if sim.model.describe is None else sim.model.describe(start.data_params)
     return ExperimentResult(trajectories, simulated.diverged_at, timings, simulated.resumed_from_step, data_notes)
 
 
