@@ -1,0 +1,152 @@
+"""Benchmark of the latent-variable data model (issue 3): simulation speed and the projected solve.
+
+Measures, in one process:
+
+* ``latent simulation``: online SGD on x = sign(F^T c / sqrt(D)) - E f, N = 1000, D = 500,
+  K = M = 2, 16 seeds (float32): sample-steps per second (seeds x steps / wall time),
+  after compilation;
+* ``floor: matmul``: the same count if every sample cost only its F-product
+  (2 D N flops) at the matrix-multiply rate measured here on [4096, D] x [D, N] float32;
+* ``latent draws``: drawing only the latents, one key per step as the simulator does
+  (fold_in(train_key, step), split, normal), 16 seeds;
+* ``floor: latents + F-product``: 1 / (1 / latent-draw rate + 2 D N / matmul rate), the
+  rate if a step cost nothing but its latent draw and its F-product;
+* ``projected solve``: the section-4 equations for N = 1000, K = M = 2 to t = 100
+  (diffrax Tsit5, rtol 1e-6, atol 1e-9), seconds per seed after compilation, and the
+  eigen-decomposition per seed.
+
+Run ``python benchmarks/latent.py``; :func:`run` returns the rows as dicts.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from harness import iid_theory, latent_theory, simulation
+from harness import scenario as scenario_lib
+from harness.paired_theory import initial_state
+
+N, D, K, M, SEEDS = 1000, 500, 2, 2, 16
+
+
+def _scenario(time_: float, seeds: int) -> dict:
+    return scenario_lib.resolve({
+        "data": {"kind": "latent", "input_dim": N, "latent_dim": D, "feature_map": "sign"},
+        "student": {"hidden": K}, "teacher": {"hidden": M},
+        "sgd": {"time": time_},
+        "run": {"seeds": seeds, "evaluations": 20, "test_samples": 1000},
+    })
+
+
+def _best_of(repeats: int, fn) -> float:
+    best = math.inf
+    for _ in range(repeats):
+        started = time.perf_counter()
+        jax.block_until_ready(fn())
+        best = min(best, time.perf_counter() - started)
+    return best
+
+
+def simulation_rate(steps: int = 2048, repeats: int = 3) -> dict:
+    scenario = _scenario(repeats * steps / N + 1.0, SEEDS)
+    sim = simulation.make_simulator(scenario)
+    instance, state = simulation.init_ensemble(sim)
+    advance = simulation.make_advance(sim)
+    state = advance(instance, state, jnp.asarray(sim.block_steps, state.step.dtype))  # compile + warm up
+    jax.block_until_ready(state)
+    best = math.inf
+    for _ in range(repeats):  # best of several stretches: the machine may be shared
+        target = int(state.step[0]) + steps
+        started = time.perf_counter()
+        state = advance(instance, state, jnp.asarray(target, state.step.dtype))
+        jax.block_until_ready(state)
+        best = min(best, time.perf_counter() - started)
+    return {"measure": "latent simulation", "value": SEEDS * steps / best, "unit": "sample-steps/s",
+            "note": f"N={N}, D={D}, K=M={K}, {SEEDS} seeds, block {sim.block_steps}, float32, best of {repeats}"}
+
+
+def matmul_rate() -> float:
+    a = jnp.ones((4096, D), jnp.float32)
+    b = jnp.ones((D, N), jnp.float32)
+    product = jax.jit(lambda a, b: a @ b)
+    product(a, b).block_until_ready()
+    seconds = _best_of(5, lambda: product(a, b))
+    return 2 * 4096 * D * N / seconds
+
+
+def latent_draw_rate(block: int, blocks: int = 40) -> float:
+    """Sample-steps/s of drawing the latents alone, one key per step as the simulator does, 16 seeds."""
+    keys = jax.random.split(jax.random.PRNGKey(1), SEEDS)
+
+    def one_step(key, step):
+        sample_key, _ = jax.random.split(jax.random.fold_in(key, step))
+        return jax.random.normal(sample_key, (1, D), jnp.float32)[0]
+
+    @jax.jit
+    def draw_blocks(keys):
+        def one_seed(key):
+            def body(i, total):
+                steps = i * block + jnp.arange(block)
+                return total + jnp.sum(jax.vmap(lambda s: one_step(key, s))(steps), axis=0)
+            return jax.lax.fori_loop(0, blocks, body, jnp.zeros(D, jnp.float32))
+        return jax.vmap(one_seed)(keys)
+
+    draw_blocks(keys).block_until_ready()
+    seconds = _best_of(3, lambda: draw_blocks(keys))
+    return SEEDS * block * blocks / seconds
+
+
+def projected_solve(seeds: int = 4, time_: float = 100.0) -> list[dict]:
+    scenario = _scenario(time_, seeds)
+    sim = simulation.make_simulator(scenario)
+    start = initial_state(sim, np.arange(seeds))
+    started = time.perf_counter()
+    spectra = latent_theory.exact_spectra(start)
+    eigen_s = (time.perf_counter() - started) / seeds
+    times = simulation.evaluation_steps(scenario) / N
+    dyn = iid_theory.dynamics_of(scenario)
+
+    def solve():
+        return latent_theory.solve_projected(
+            dyn, spectra, start.order_parameters, start.teacher_v, times, rtol=1e-6, atol=1e-9
+        )
+
+    started = time.perf_counter()
+    _, steps = solve()  # compiles
+    compile_s = time.perf_counter() - started
+    seconds = _best_of(2, lambda: solve()[0].Q)
+    return [
+        {"measure": "projected solve", "value": seconds / seeds, "unit": "s/seed",
+         "note": f"N={N}, K=M={K}, t={time_:g}, {seeds} seeds vmapped, {int(steps.max())} steps, "
+                 f"first call (with compile) {compile_s:.1f} s"},
+        {"measure": "eigen-decomposition of Omega", "value": eigen_s, "unit": "s/seed", "note": f"N={N}, numpy eigh"},
+    ]
+
+
+def run() -> list[dict]:
+    rows = [simulation_rate()]
+    block = simulation.default_block_steps(_scenario(1.0, SEEDS))
+    rate = matmul_rate()
+    rows.append({"measure": "matmul rate", "value": rate / 1e9, "unit": "GFLOP/s",
+                 "note": f"[4096, {D}] x [{D}, {N}] float32"})
+    rows.append({"measure": "floor: matmul", "value": rate / (2 * D * N), "unit": "sample-steps/s",
+                 "note": "F-product alone at the matmul rate"})
+    draws = latent_draw_rate(block)
+    rows.append({"measure": "latent draws", "value": draws, "unit": "sample-steps/s",
+                 "note": f"jax.random.normal, per-step keys, {SEEDS} seeds"})
+    rows.append({"measure": "floor: latents + F-product", "value": 1.0 / (1.0 / draws + 2 * D * N / rate),
+                 "unit": "sample-steps/s", "note": "latent draw time + F-product time at the matmul rate"})
+    rows.extend(projected_solve())
+    return rows
+
+
+if __name__ == "__main__":
+    results = run()
+    width = max(len(row["measure"]) for row in results)
+    for row in results:
+        print(f"{row['measure']:<{width}}  {row['value']:>12.4g} {row['unit']:<15} {row['note']}")
