@@ -30,7 +30,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import optax
+from jax.sharding import Mesh, NamedSharding, PartitionSpec
 
+from harness import threefry
 from harness.activations import get_activation
 from harness.data_models import DataModel, build_data_model
 from harness.optimizers import make_optimizer
@@ -138,6 +140,42 @@ def make_simulator(scenario: Scenario) -> Simulator:
     )
 
 
+def seed_mesh(count: int) -> Mesh | None:
+    """The host devices an ensemble of ``count`` seeds is split across (None: one device).
+
+    harness/__init__.py exposes one XLA CPU device per core; seeds are independent, so
+    each device trains its share of them in its own loop, in parallel. The number of
+    devices used is the largest that divides the seed count (every shard the same shape)
+    and leaves each device at least two seeds: XLA compiles a batch of one seed to other
+    instructions (rounding differently), and a seed's results should not depend on how
+    many cores the machine has.
+    """
+    devices = jax.devices()
+    used = max((d for d in range(1, len(devices) + 1) if count % d == 0 and count // d >= 2), default=1)
+    return None if used <= 1 else Mesh(np.array(devices[:used]), ("seeds",))
+
+
+def place_on_devices(tree: Any, count: int) -> Any:
+    """Put arrays with a leading seed axis of length ``count`` on the seed mesh (no-op for one device)."""
+    mesh = seed_mesh(count)
+    return tree if mesh is None else jax.device_put(tree, NamedSharding(mesh, PartitionSpec("seeds")))
+
+
+def _split_over_seeds(fn: Any, count: int, replicated: int = 0) -> Any:
+    """``fn`` run on each device's share of the seeds (all arguments but the last ``replicated`` are split)."""
+    mesh = seed_mesh(count)
+    if mesh is None:
+        return fn
+
+    def call(*args: Any) -> Any:
+        split = len(args) - replicated
+        specs = (PartitionSpec("seeds"),) * split + (PartitionSpec(),) * replicated
+        # check_vma off: data models may start loops from constants, which are the same on every device.
+        return jax.shard_map(fn, mesh=mesh, in_specs=specs, out_specs=PartitionSpec("seeds"), check_vma=False)(*args)
+
+    return call
+
+
 # ------------------------------------------------------------------------- networks
 
 
@@ -172,15 +210,16 @@ def sample_loss(scenario: Scenario, params: dict[str, Array], x: Array, y: Array
 
 def seed_keys(scenario: Scenario, seed_indices: np.ndarray) -> Array:
     base = jax.random.PRNGKey(scenario["run"]["seed"])
-    return jax.vmap(lambda s: jax.random.fold_in(base, s))(jnp.asarray(seed_indices, jnp.uint32))
+    return threefry.fold_in(base, jnp.asarray(seed_indices, jnp.uint32))
 
 
 def _split_seed_key(scenario: Scenario, key: Array) -> dict[str, Array]:
     names = ("teacher", "student", "data", "train", "test")
-    keys = dict(zip(names, jax.random.split(key, len(names))))
+    split = threefry.split(key, len(names))
+    keys = {name: split[..., i, :] for i, name in enumerate(names)}
     if scenario["run"]["shared_teacher"]:
-        shared = jax.random.fold_in(jax.random.PRNGKey(scenario["run"]["seed"]), SHARED_KEY_INDEX)
-        keys["teacher"], keys["data"] = jax.random.split(shared, 2)
+        shared = threefry.fold_in(jax.random.PRNGKey(scenario["run"]["seed"]), jnp.uint32(SHARED_KEY_INDEX))
+        keys["teacher"], keys["data"] = threefry.split_pair(shared)
     return keys
 
 
@@ -194,14 +233,17 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     k, m = s["student"]["hidden"], s["teacher"]["hidden"]
     n, d = sim.model.input_dim, sim.model.teacher_dim
 
-    def one(key: Array) -> tuple[Array, ...]:
+    def one(key: Array, teacher_std: Array, student_std: Array) -> tuple[Array, ...]:
         keys = _split_seed_key(s, key)
-        teacher_w = s["teacher"]["init_std"] * jax.random.normal(keys["teacher"], (m, d), sim.dtype)
-        student_w = s["student"]["init_std"] * jax.random.normal(keys["student"], (k, n), sim.dtype)
+        teacher_w = teacher_std * threefry.normal(keys["teacher"], (m, d), sim.dtype)
+        student_w = student_std * threefry.normal(keys["student"], (k, n), sim.dtype)
         data_params = sim.model.init(keys["data"])
         return teacher_w, student_w, data_params
 
-    teacher_w, student_w, data_params = jax.jit(jax.vmap(one))(seed_keys(s, seed_indices))
+    # The widths enter as run-time values: as compile-time constants XLA would fold them
+    # into the draw's own sqrt(2) factor, rounding differently from std * N(0, 1).
+    stds = [jnp.asarray(s[role]["init_std"], sim.dtype) for role in ("teacher", "student")]
+    teacher_w, student_w, data_params = jax.jit(jax.vmap(one, in_axes=(0, None, None)))(seed_keys(s, seed_indices), *stds)
     count = len(seed_indices)
     teacher_v = jnp.tile(jnp.asarray(s["teacher"]["second_layer"], sim.dtype), (count, 1))
     student_v = jnp.tile(jnp.asarray(s["student"]["second_layer"], sim.dtype), (count, 1))
@@ -227,69 +269,117 @@ def init_ensemble(sim: Simulator, seed_indices: np.ndarray | None = None) -> tup
     opt_state = jax.vmap(sim.optimizer.init)(params)
     step = jnp.zeros(len(seed_indices), dtype=jnp.int64)
     instance = Instance(teacher_w, teacher_v, data_params, train_key, test_x, test_y)
-    return instance, State(params, opt_state, step)
+    return place_on_devices((instance, State(params, opt_state, step)), len(seed_indices))
+
+
+def step_keys(train_key: Array, steps: Array) -> Array:
+    """The key of each absolute SGD step: ``fold_in(train_key, step)``.
+
+    ``fold_in`` takes 32-bit data; steps from 2**32 on fold in their high word too, so
+    the stream never repeats (earlier steps keep the plain ``fold_in`` key).
+    """
+    steps = jnp.asarray(steps, jnp.int64)
+    low = threefry.fold_in(train_key, steps & 0xFFFFFFFF)
+    high = (steps >> 32).astype(jnp.uint32)
+    return jnp.where((high > 0)[..., None], threefry.fold_in(low, high), low)
+
+
+def draw_block(sim: Simulator, instance: Instance, steps: Array) -> tuple[Array, Array]:
+    """The training samples of every seed at the given absolute steps: x ``[S, B, N]``, noisy y ``[S, B]``.
+
+    Step ``i`` of a seed uses the key ``fold_in(train_key, i)`` split into a sample key and
+    a label-noise key. The inputs are drawn seed by seed in a ``lax.map`` whose body
+    returns nothing else: the loop boundary makes XLA store each draw once. Were the draw
+    fused into its consumers (the student's update and the teacher's labels), XLA would
+    recompute the random numbers, the dominant cost, for each of them.
+    """
+    s = sim.scenario
+
+    def inputs_of_seed(args: tuple[Array, Any]) -> tuple[Array, Array | None]:
+        train_key, data_params = args
+        sample_keys, _ = threefry.split_pair(step_keys(train_key, steps))
+        x, c = jax.vmap(lambda key: sim.model.sample(data_params, key, 1))(sample_keys)
+        return x[:, 0], (None if c is x else c[:, 0])  # i.i.d. inputs: the teacher reads x itself
+
+    x, c = jax.lax.map(inputs_of_seed, (instance.train_key, instance.data_params))
+    c = x if c is None else c
+    _, noise_keys = threefry.split_pair(jax.vmap(lambda key: step_keys(key, steps))(instance.train_key))
+    noise = threefry.normal(noise_keys, (), sim.dtype)
+    clean = jax.vmap(lambda w, v, cs: clean_labels(sim, w, v, cs))(instance.teacher_w, instance.teacher_v, c)
+    return x, clean + s["teacher"]["noise_std"] * noise
 
 
 def draw_steps(sim: Simulator, instance_one: Instance, steps: Array) -> tuple[Array, Array]:
     """The training samples (x, noisy label) of one seed at the given absolute steps.
 
-    Shapes ``[len(steps), N]`` and ``[len(steps)]``. This is the training stream itself,
-    exposed so that tests can replay it through an independent implementation.
+    Shapes ``[len(steps), N]`` and ``[len(steps)]``. This is the training stream itself
+    (:func:`draw_block` for one seed), exposed so that tests can replay it through an
+    independent implementation.
     """
-    s = sim.scenario
-
-    def one(step: Array) -> tuple[Array, Array, Array]:
-        key = jax.random.fold_in(instance_one.train_key, step)
-        sample_key, noise_key = jax.random.split(key)
-        x, c = sim.model.sample(instance_one.data_params, sample_key, 1)
-        noise = jax.random.normal(noise_key, (), sim.dtype)
-        return x[0], c[0], noise
-
-    x, c, noise = jax.vmap(one)(steps)
-    y = clean_labels(sim, instance_one.teacher_w, instance_one.teacher_v, c)
-    return x, y + s["teacher"]["noise_std"] * noise
+    one = jax.tree_util.tree_map(lambda leaf: jnp.asarray(leaf)[None], instance_one)
+    x, y = draw_block(sim, one, jnp.asarray(steps))
+    return x[0], y[0]
 
 
 # --------------------------------------------------------------------------- dynamics
 
 
-def _advance_one(sim: Simulator, instance: Instance, state: State, target: Array) -> State:
-    """Run one seed's SGD from ``state.step`` up to (not including) step ``target``."""
+def _sgd_step(sim: Simulator):
+    """One seed's SGD step on one sample: jax.grad of the per-sample loss through the optimizer."""
     s = sim.scenario
-    block = sim.block_steps
     grad_fn = jax.grad(lambda p, x, y: sample_loss(s, p, x, y))
 
-    def sgd_step(carry: tuple[Any, Any], inputs: tuple[Array, Array, Array]) -> tuple[tuple[Any, Any], None]:
-        params, opt_state = carry
-        x, y, active = inputs
+    def step(params: Any, opt_state: Any, x: Array, y: Array, active: Array) -> tuple[Any, Any]:
         grads = grad_fn(params, x, y)
         updates, new_opt_state = sim.optimizer.update(grads, opt_state, params)
         new_params = optax.apply_updates(params, updates)
         keep = lambda new, old: jnp.where(active, new, old)  # noqa: E731
-        return (
-            jax.tree_util.tree_map(keep, new_params, params),
-            jax.tree_util.tree_map(keep, new_opt_state, opt_state),
-        ), None
+        return jax.tree_util.tree_map(keep, new_params, params), jax.tree_util.tree_map(keep, new_opt_state, opt_state)
 
-    def run_block(st: State) -> State:
-        first = (st.step // block) * block
-        steps = first + jnp.arange(block, dtype=st.step.dtype)
-        x, y = draw_steps(sim, instance, steps)
-        active = (steps >= st.step) & (steps < target)
-        (params, opt_state), _ = jax.lax.scan(sgd_step, (st.params, st.opt_state), (x, y, active))
-        return State(params, opt_state, jnp.minimum(first + block, target))
-
-    return jax.lax.while_loop(lambda st: st.step < target, run_block, state)
+    return step
 
 
 def make_advance(sim: Simulator):
     """``advance(instance, state, target) -> state`` for all seeds, jit-compiled once.
 
+    Every seed is at the same step (they advance in lockstep), so the loop runs on one
+    scalar step counter and only the per-step arithmetic is vmapped over seeds. Blocks
+    of ``block_steps`` samples are drawn one ahead: the draw of block b + 1 does not
+    depend on the updates of block b, so XLA can run the two side by side. A block that
+    overshoots the target masks its extra steps (the samples are keyed by absolute step,
+    so nothing else depends on where blocks start).
     The state's buffers are donated: the caller must use the returned state.
     """
+    block = sim.block_steps
+    seed_step = jax.vmap(_sgd_step(sim), in_axes=(0, 0, 0, 0, None))
+
+    def advance_shard(instance: Instance, state: State, target: Array) -> State:
+        start = state.step[0]
+        target = jnp.asarray(target, start.dtype)
+        offsets = jnp.arange(block, dtype=start.dtype)
+
+        def update(params: Any, opt_state: Any, first: Array, x: Array, y: Array) -> tuple[Any, Any]:
+            def one(i: Array, carry: tuple[Any, Any]) -> tuple[Any, Any]:
+                x_i = jax.lax.dynamic_index_in_dim(x, i, axis=1, keepdims=False)
+                y_i = jax.lax.dynamic_index_in_dim(y, i, axis=1, keepdims=False)
+                return seed_step(*carry, x_i, y_i, first + i < target)
+
+            return jax.lax.fori_loop(0, block, one, (params, opt_state))
+
+        def body(carry: tuple[Any, ...]) -> tuple[Any, ...]:
+            params, opt_state, first, x, y = carry
+            x_next, y_next = draw_block(sim, instance, first + block + offsets)
+            params, opt_state = update(params, opt_state, first, x, y)
+            return params, opt_state, first + block, x_next, y_next
+
+        x, y = draw_block(sim, instance, start + offsets)
+        params, opt_state, *_ = jax.lax.while_loop(
+            lambda carry: carry[2] < target, body, (state.params, state.opt_state, start, x, y)
+        )
+        return State(params, opt_state, jnp.full_like(state.step, jnp.maximum(start, target)))
 
     def advance(instance: Instance, state: State, target: Array) -> State:
-        return jax.vmap(lambda i, st: _advance_one(sim, i, st, target))(instance, state)
+        return _split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
 
     return jax.jit(advance, donate_argnums=(1,))
 
@@ -308,4 +398,9 @@ def _observe_one(sim: Simulator, instance: Instance, state: State) -> Observatio
 
 def make_observe(sim: Simulator):
     """``observe(instance, state) -> Observation`` for all seeds, jit-compiled once."""
-    return jax.jit(jax.vmap(lambda i, st: _observe_one(sim, i, st)))
+    observe_shard = jax.vmap(lambda i, st: _observe_one(sim, i, st))
+
+    def observe(instance: Instance, state: State) -> Observation:
+        return _split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
+
+    return jax.jit(observe)
