@@ -48,7 +48,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import feature_covariance
+from harness import feature_covariance, threefry
 from harness.activations import ACTIVATIONS
 from harness.data_models import DataModel
 from harness.scenario import SCHEMA, Scenario, ScenarioError
@@ -227,7 +227,7 @@ def latent_model(kind: str, input_dim: int, teacher_dim: int, generator: _Genera
         return LatentParams(weights, mean.astype(dtype), scale.astype(dtype), omega, phi, se_omega, se_phi)
 
     def sample(params: LatentParams, key: Array, count: int) -> tuple[Array, Array]:
-        c = jax.random.normal(key, (count, d), dtype=dtype)
+        c = threefry.normal(key, (count, d), dtype)  # = jax.random.normal, fused (harness.threefry)
         x = (generator.apply(params.weights, c) - params.mean) / params.scale
         return x, c
 
