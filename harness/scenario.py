@@ -170,6 +170,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "seed": Key("int", 0, "base random seed", _nonnegative_int),
         "shared_teacher": Key("bool", False, "one teacher for all seeds", None),
         "block_steps": Key("int", 0, "SGD steps per drawn block of samples (0: automatic)", _nonnegative_int),
+        "engine": Key(
+            "str", "full", "'full' trains the weights; 'chain' steps the order parameters exactly "
+            "(i.i.d. Gaussian inputs, plain SGD; harness.chain)", _one_of("full", "chain")
+        ),
         "checkpoint_minutes": Key(
             "float", 5.0, "minutes between saved checkpoints of a run's state (0: none)", _nonnegative_finite
         ),
@@ -212,6 +216,17 @@ def _check_latent_keys(s: Scenario) -> None:
 
 
 EXTRA_CHECKS.append(_check_latent_keys)
+
+
+def _check_engine(s: Scenario) -> None:
+    if s["run"]["engine"] != "full":
+        from harness.chain import check_scenario  # lazily: it imports this module
+
+        check_scenario(s)
+
+
+EXTRA_CHECKS.append(_check_engine)
+
 
 # ----------------------------------------------------------------------- resolution
 
