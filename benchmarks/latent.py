@@ -15,6 +15,11 @@ Measures, in one process:
   (diffrax Tsit5, rtol 1e-6, atol 1e-9), seconds per seed after compilation, and the
   eigen-decomposition per seed.
 
+Every figure is the best of a few repeats, reported per wall-clock second and per CPU
+second of this process (all threads): on a shared machine the wall-clock figures drop
+with the load, the CPU-second figures much less, so the ratios between rows are best
+read in the CPU column.
+
 Run ``python benchmarks/latent.py``; :func:`run` returns the rows as dicts.
 """
 
@@ -27,7 +32,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import iid_theory, latent_theory, simulation
+from harness import iid_theory, latent_theory, simulation, threefry
 from harness import scenario as scenario_lib
 from harness.paired_theory import initial_state
 
@@ -43,13 +48,21 @@ def _scenario(time_: float, seeds: int) -> dict:
     })
 
 
-def _best_of(repeats: int, fn) -> float:
-    best = math.inf
+def _best_of(repeats: int, fn) -> tuple[float, float]:
+    """(wall seconds, CPU seconds) of fn(), each the minimum over ``repeats`` calls."""
+    wall = cpu = math.inf
     for _ in range(repeats):
-        started = time.perf_counter()
+        started, started_cpu = time.perf_counter(), time.process_time()
         jax.block_until_ready(fn())
-        best = min(best, time.perf_counter() - started)
-    return best
+        wall = min(wall, time.perf_counter() - started)
+        cpu = min(cpu, time.process_time() - started_cpu)
+    return wall, cpu
+
+
+def _row(measure: str, work: float, seconds: tuple[float, float], unit: str, note: str) -> dict:
+    """A rate row: ``work`` per wall second (value) and per CPU second (per_cpu_second)."""
+    return {"measure": measure, "value": work / seconds[0], "per_cpu_second": work / seconds[1],
+            "unit": unit, "note": note}
 
 
 def simulation_rate(steps: int = 2048, repeats: int = 3) -> dict:
@@ -59,33 +72,34 @@ def simulation_rate(steps: int = 2048, repeats: int = 3) -> dict:
     advance = simulation.make_advance(sim)
     state = advance(instance, state, jnp.asarray(sim.block_steps, state.step.dtype))  # compile + warm up
     jax.block_until_ready(state)
-    best = math.inf
-    for _ in range(repeats):  # best of several stretches: the machine may be shared
-        target = int(state.step[0]) + steps
-        started = time.perf_counter()
-        state = advance(instance, state, jnp.asarray(target, state.step.dtype))
-        jax.block_until_ready(state)
-        best = min(best, time.perf_counter() - started)
-    return {"measure": "latent simulation", "value": SEEDS * steps / best, "unit": "sample-steps/s",
-            "note": f"N={N}, D={D}, K=M={K}, {SEEDS} seeds, block {sim.block_steps}, float32, best of {repeats}"}
+    box = [state]
+
+    def stretch():  # the advance donates its state: keep the latest one
+        target = int(box[0].step[0]) + steps
+        box[0] = advance(instance, box[0], jnp.asarray(target, box[0].step.dtype))
+        return box[0]
+
+    seconds = _best_of(repeats, stretch)
+    return _row("latent simulation", SEEDS * steps, seconds, "sample-steps/s",
+                f"N={N}, D={D}, K=M={K}, {SEEDS} seeds, block {sim.block_steps}, float32")
 
 
-def matmul_rate() -> float:
+def matmul_seconds() -> tuple[tuple[float, float], float]:
+    """Best (wall, CPU) seconds of a [4096, D] x [D, N] float32 product, and its flop count."""
     a = jnp.ones((4096, D), jnp.float32)
     b = jnp.ones((D, N), jnp.float32)
     product = jax.jit(lambda a, b: a @ b)
     product(a, b).block_until_ready()
-    seconds = _best_of(5, lambda: product(a, b))
-    return 2 * 4096 * D * N / seconds
+    return _best_of(5, lambda: product(a, b)), 2.0 * 4096 * D * N
 
 
-def latent_draw_rate(block: int, blocks: int = 40) -> float:
+def latent_draw_seconds(block: int, blocks: int = 40) -> tuple[tuple[float, float], int]:
     """Sample-steps/s of drawing the latents alone, one key per step as the simulator does, 16 seeds."""
     keys = jax.random.split(jax.random.PRNGKey(1), SEEDS)
 
     def one_step(key, step):
         sample_key, _ = jax.random.split(jax.random.fold_in(key, step))
-        return jax.random.normal(sample_key, (1, D), jnp.float32)[0]
+        return threefry.normal(sample_key, (1, D), jnp.float32)[0]  # the simulator's draw
 
     @jax.jit
     def draw_blocks(keys):
@@ -97,8 +111,7 @@ def latent_draw_rate(block: int, blocks: int = 40) -> float:
         return jax.vmap(one_seed)(keys)
 
     draw_blocks(keys).block_until_ready()
-    seconds = _best_of(3, lambda: draw_blocks(keys))
-    return SEEDS * block * blocks / seconds
+    return _best_of(3, lambda: draw_blocks(keys)), SEEDS * block * blocks
 
 
 def projected_solve(seeds: int = 4, time_: float = 100.0) -> list[dict]:
@@ -119,28 +132,31 @@ def projected_solve(seeds: int = 4, time_: float = 100.0) -> list[dict]:
     started = time.perf_counter()
     _, steps = solve()  # compiles
     compile_s = time.perf_counter() - started
-    seconds = _best_of(2, lambda: solve()[0].Q)
+    wall, cpu = _best_of(2, lambda: solve()[0].Q)
     return [
-        {"measure": "projected solve", "value": seconds / seeds, "unit": "s/seed",
+        {"measure": "projected solve", "value": wall / seeds, "per_cpu_second": cpu / seeds, "unit": "s/seed",
          "note": f"N={N}, K=M={K}, t={time_:g}, {seeds} seeds vmapped, {int(steps.max())} steps, "
-                 f"first call (with compile) {compile_s:.1f} s"},
-        {"measure": "eigen-decomposition of Omega", "value": eigen_s, "unit": "s/seed", "note": f"N={N}, numpy eigh"},
+                 f"first call (with compile) {compile_s:.1f} s; CPU column: CPU s/seed"},
+        {"measure": "eigen-decomposition of Omega", "value": eigen_s, "per_cpu_second": float("nan"),
+         "unit": "s/seed", "note": f"N={N}, numpy eigh (wall)"},
     ]
 
 
 def run() -> list[dict]:
     rows = [simulation_rate()]
     block = simulation.default_block_steps(_scenario(1.0, SEEDS))
-    rate = matmul_rate()
-    rows.append({"measure": "matmul rate", "value": rate / 1e9, "unit": "GFLOP/s",
-                 "note": f"[4096, {D}] x [{D}, {N}] float32"})
-    rows.append({"measure": "floor: matmul", "value": rate / (2 * D * N), "unit": "sample-steps/s",
-                 "note": "F-product alone at the matmul rate"})
-    draws = latent_draw_rate(block)
-    rows.append({"measure": "latent draws", "value": draws, "unit": "sample-steps/s",
-                 "note": f"jax.random.normal, per-step keys, {SEEDS} seeds"})
-    rows.append({"measure": "floor: latents + F-product", "value": 1.0 / (1.0 / draws + 2 * D * N / rate),
-                 "unit": "sample-steps/s", "note": "latent draw time + F-product time at the matmul rate"})
+    (matmul_wall, matmul_cpu), flops = matmul_seconds()
+    rows.append(_row("matmul rate", flops / 1e9, (matmul_wall, matmul_cpu), "GFLOP/s",
+                     f"[4096, {D}] x [{D}, {N}] float32"))
+    per_sample = 2.0 * D * N / flops  # matmul seconds per sample-step = per_sample * measured seconds
+    rows.append(_row("floor: matmul", 1.0, (per_sample * matmul_wall, per_sample * matmul_cpu), "sample-steps/s",
+                     "F-product alone at the matmul rate"))
+    (draw_wall, draw_cpu), draws = latent_draw_seconds(block)
+    rows.append(_row("latent draws", draws, (draw_wall, draw_cpu), "sample-steps/s",
+                     f"threefry.normal, per-step keys, {SEEDS} seeds"))
+    floor = (draw_wall / draws + per_sample * matmul_wall, draw_cpu / draws + per_sample * matmul_cpu)
+    rows.append(_row("floor: latents + F-product", 1.0, floor, "sample-steps/s",
+                     "latent draw time + F-product time at the matmul rate"))
     rows.extend(projected_solve())
     return rows
 
@@ -148,5 +164,7 @@ def run() -> list[dict]:
 if __name__ == "__main__":
     results = run()
     width = max(len(row["measure"]) for row in results)
+    print(f"{'':<{width}}  {'per wall s':>12} {'per CPU s':>12}")
     for row in results:
-        print(f"{row['measure']:<{width}}  {row['value']:>12.4g} {row['unit']:<15} {row['note']}")
+        print(f"{row['measure']:<{width}}  {row['value']:>12.4g} {row['per_cpu_second']:>12.4g} "
+              f"{row['unit']:<15} {row['note']}")
