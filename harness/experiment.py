@@ -85,7 +85,7 @@ def simulate(
         step = steps[index]
         state = advance(instance, state, jnp.asarray(step, dtype=state.step.dtype))
         records.append(jax.device_get(observe(instance, state)))
-        if checkpointer is not None and index + 1 < len(steps):
+        if checkpointer is not None and 0 < step < steps[-1]:  # nothing to save at the start or the end
             checkpointer.maybe_save(index + 1, state, records)
         if progress is not None:
             progress(int(step), int(steps[-1]))

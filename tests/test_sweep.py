@@ -328,7 +328,8 @@ def test_a_sweep_killed_at_any_moment_is_completed_by_running_it_again(killed_an
     for run_id, manifest in before.items():  # finished points were not computed again
         assert (out / run_id / "manifest.json").read_bytes() == manifest
     manifests = [json.loads((out / r / "manifest.json").read_text()) for r in plan.run_ids]
-    assert any(m.get("resumed_from_step", 0) > 0 for m in manifests)  # one resumed from its checkpoint
+    # The point that had a checkpoint when the sweep was killed continued from it.
+    assert any(m.get("resumed_from_step", 0) > 0 for m in manifests), rerun.stderr
     assert [m["sweep"]["index"] for m in manifests] == [0, 1, 2]
     assert not list((out / ".checkpoints").glob("*/*"))  # checkpoints of stored runs are gone
     assert not list(out.glob(".*.partial"))
