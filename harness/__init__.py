@@ -34,4 +34,38 @@ try:
 except RuntimeError:  # JAX already started its backends (imported and used before harness): keep them
     pass
 
+
+def _compilation_cache() -> str | None:
+    """Where compiled programs are kept between runs (None: nowhere).
+
+    ``HARNESS_COMPILATION_CACHE`` = a folder, or ``off``; by default
+    ``$XDG_CACHE_HOME/harness/xla`` (``~/.cache/harness/xla``). A run then compiles its
+    simulator once per scenario shape and machine instead of once per process, which is
+    what a sweep of many same-shaped points pays most. Compiled CPU code depends on the
+    processor, so each processor model (and JAX version) gets its own subfolder: a home
+    folder shared by a cluster's different nodes never hands one node another's code.
+    """
+    chosen = os.environ.get("HARNESS_COMPILATION_CACHE", "").strip()
+    if chosen.lower() in ("off", "0", "no", "false"):
+        return None
+    base = chosen or os.path.join(os.environ.get("XDG_CACHE_HOME") or os.path.expanduser("~/.cache"), "harness", "xla")
+    processor = ""
+    try:
+        with open("/proc/cpuinfo") as handle:
+            processor = "".join(line for line in handle if line.startswith(("model name", "flags")))[:100_000]
+    except OSError:
+        import platform
+
+        processor = platform.processor() + platform.machine()
+    import hashlib
+
+    tag = hashlib.sha256(f"{processor}|{jax.__version__}".encode()).hexdigest()[:16]
+    return os.path.join(base, tag)
+
+
+_cache = _compilation_cache()
+if _cache is not None:
+    jax.config.update("jax_compilation_cache_dir", _cache)
+    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.5)  # skip trivial programs
+
 __version__ = "0.1.0"

@@ -54,15 +54,24 @@ def print_run_summary(stored, scenario, *, stream=None) -> None:
     if stored.manifest.get("kind") == "theory":
         return
     verdicts = group_verdicts(stored.metrics)
-    stream.write(f"  {'observable':<15}{'max |z|':>9}  {'first |z|>3 run at t':>21}  verdict\n")
+    stream.write(f"  {'observable':<15}{'max |z|':>9}{'adjusted':>10}  {'first |z|>3 run at t':>21}  verdict\n")
     for _, row in verdicts.iterrows():
-        z = row["max_abs_z"]
         # iterrows turns a None verdict into NaN; both mean "nothing to compare" (n/a)
         verdict = "n/a" if row["agree"] is None or row["agree"] != row["agree"] else (
             "agree" if row["agree"] else "DISAGREE")
         when = "-" if row["divergence_t"] != row["divergence_t"] else f"{row['divergence_t']:.3g}"
-        stream.write(f"  {row['group']:<15}{z:>9.2f}  {when:>21}  {verdict}\n")
-    stream.write(f"  (agree: |z| <= {AGREEMENT_Z:g} at every evaluation time)\n")
+        stream.write(
+            f"  {row['group']:<15}{row['max_abs_z']:>9.2f}{row['max_abs_z_adjusted']:>10.2f}  {when:>21}  {verdict}\n"
+        )
+    stream.write(
+        f"  (agree: adjusted |z| <= {AGREEMENT_Z:g} at every evaluation time; adjusted = |z| carried to the normal\n"
+        f"   scale through Student's t with seeds - 1 degrees of freedom)\n"
+    )
+    if "gaussian_equivalence_gap" in stored.manifest:
+        from harness.comparison import describe_gaps
+
+        seeds = stored.manifest.get("seeds", 0) - stored.manifest.get("diverged_count", 0)
+        stream.write(f"  {describe_gaps(stored.manifest, seeds if seeds >= 2 else None)}\n")
 
 
 def _cmd_run(args: argparse.Namespace) -> int:

@@ -67,7 +67,7 @@ def index_row(run_id: str, scenario: scenario_lib.Scenario, summary: pd.DataFram
     row.update(scenario_lib.flatten(scenario))
     test = metric_table[metric_table["observable"] == "test_error"]
     if not test.empty:
-        for column in comparison.METRIC_COLUMNS[1:]:
+        for column in comparison.METRIC_COLUMNS[1:] + comparison.METRIC_EXTRA_COLUMNS:
             row[f"test_error.{column}"] = float(test.iloc[0][column])
     final = summary[summary["observable"] == "test_error"].sort_values("t").iloc[-1]
     row["final_test_error"] = float(final["sim_mean"])
@@ -122,10 +122,14 @@ def compute_run(
     )
     if result.resumed_from_step:
         manifest["resumed_from_step"] = result.resumed_from_step
+    if result.data_notes:
+        manifest["data_model"] = result.data_notes
+    gaps = comparison.equivalence_gaps(traj)  # notes, section 5: which of the two ways a theory fails
+    manifest.update({name: value if np.isfinite(value) else None for name, value in gaps.items()})  # strict JSON
     manifest.update(extra_manifest or {})
     return ComputedRun(
         run_id, scenario_lib.to_toml(scenario), manifest, traj.to_frame(), summary, metric_table,
-        index_row(run_id, scenario, summary, metric_table),
+        {**index_row(run_id, scenario, summary, metric_table), **gaps},
     )
 
 

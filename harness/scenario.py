@@ -288,6 +288,12 @@ def _coerce(path: str, key: Key, value: Any) -> Any:
     raise AssertionError(key.kind)
 
 
+def _name(name: Any) -> str:
+    """A section or key name fit for a one-line message (odd characters escaped)."""
+    text = str(name)
+    return text if text.isprintable() and text.strip() == text else repr(text)[1:-1]
+
+
 def _show(value: Any) -> str:
     text = repr(value)
     return text if len(text) <= 60 else text[:57] + "..."
@@ -306,7 +312,7 @@ def resolve(table: dict[str, Any] | None = None, *, allow_sections: tuple[str, .
     for section in table:
         if section not in SCHEMA and section not in allow_sections:
             allowed = ", ".join(list(SCHEMA) + list(allow_sections))
-            raise ScenarioError(f"scenario section '{section}' is unknown; allowed: {allowed}")
+            raise ScenarioError(f"scenario section '{_name(section)}' is unknown; allowed: {allowed}")
     for section, keys in SCHEMA.items():
         given = table.get(section, {})
         if not isinstance(given, dict):
@@ -314,7 +320,7 @@ def resolve(table: dict[str, Any] | None = None, *, allow_sections: tuple[str, .
         for name in given:
             if name not in keys:
                 raise ScenarioError(
-                    f"scenario key '{section}.{name}' is unknown; allowed in [{section}]: "
+                    f"scenario key '{section}.{_name(name)}' is unknown; allowed in [{section}]: "
                     + ", ".join(keys)
                 )
         values: dict[str, Any] = {}

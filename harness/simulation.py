@@ -119,14 +119,22 @@ def evaluation_steps(scenario: Scenario) -> np.ndarray:
 def default_block_steps(scenario: Scenario) -> int:
     """Steps per drawn block when ``run.block_steps`` is 0.
 
-    Large enough to amortise the per-block overhead (the teacher's matrix product and
-    the loop), small enough to keep a block of all seeds' inputs within a few MiB.
+    A block of one device's inputs (its seeds x block x N numbers) is kept near 256 KiB, so
+    that it is drawn and read back while still in the core's cache: measured on 2 cores for
+    N = 500, 16 seeds (benchmarks/RESULTS.md), blocks of 8-32 steps ran 10-20% faster than
+    blocks of 128-256. Large inputs get blocks down to a single step, whose draw alone
+    dwarfs the loop's overhead.
     """
     chosen = scenario["run"]["block_steps"]
     if chosen > 0:
         return chosen
-    floats_per_step = scenario["data"]["input_dim"] * scenario["run"]["seeds"]
-    return int(np.clip(2 ** round(math.log2(max(1, (1 << 20) / floats_per_step))), 16, 512))
+    seeds = scenario["run"]["seeds"]
+    mesh = seed_mesh(seeds)
+    per_device = seeds // (1 if mesh is None else mesh.size)
+    itemsize = 8 if scenario["run"]["dtype"] == "float64" else 4
+    data = scenario["data"]
+    floats = per_device * max(data["input_dim"], data.get("latent_dim", 0) or 0) * itemsize
+    return int(np.clip(2 ** round(math.log2(max(1.0, (1 << 18) / floats))), 1, 256))
 
 
 def make_simulator(scenario: Scenario) -> Simulator:
@@ -243,7 +251,8 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     # The widths enter as run-time values: as compile-time constants XLA would fold them
     # into the draw's own sqrt(2) factor, rounding differently from std * N(0, 1).
     stds = [jnp.asarray(s[role]["init_std"], sim.dtype) for role in ("teacher", "student")]
-    teacher_w, student_w, data_params = jax.jit(jax.vmap(one, in_axes=(0, None, None)))(seed_keys(s, seed_indices), *stds)
+    draw = jax.jit(jax.vmap(one, in_axes=(0, None, None)))
+    teacher_w, student_w, data_params = draw(seed_keys(s, seed_indices), *stds)
     count = len(seed_indices)
     teacher_v = jnp.tile(jnp.asarray(s["teacher"]["second_layer"], sim.dtype), (count, 1))
     student_v = jnp.tile(jnp.asarray(s["student"]["second_layer"], sim.dtype), (count, 1))
