@@ -17,8 +17,11 @@ Routes
   average. Repeated indices (k = l, c = d, b = c, ...) merge into one variable, so such
   averages are lower-dimensional integrals; averages that coincide (I4 is symmetric in
   (k, l) and in (c, d)) are computed once. Linear factors are folded into the variable
-  they multiply, and a purely polynomial innermost variable (u_b in I3, a linear teacher)
-  is integrated exactly through its conditional mean and variance.
+  they multiply. Two kinds of slot are integrated exactly instead of by quadrature: a
+  polynomial u^p (u_b of I3, a linear unit) through its conditional mean and variance,
+  and a relu slot u^p 1{u > 0} (relu' = 1{u > 0}, relu = u 1{u > 0}) through truncated
+  Gaussian moments, so a relu average needs one quadrature level less than it has
+  variables. ``method="quadrature"`` forces this route for erf/linear (to test it).
 
 Quadrature scheme
 -----------------
@@ -27,37 +30,52 @@ eigen-decomposition (singular covariances are common: a student at Q = 0, a stud
 equal to a teacher unit). The rows A_S of each average's variables are brought to lower
 triangular form by a QR decomposition, A_S = L_S Q_S, so u_S = L_S z with z ~ N(0, I) and
 the integral is nested: variable j sees the outer nodes only through its conditional
-mean m_j = sum_{i<j} L_ji z_i and its own conditional scale s_j = L_jj.
+mean m_j = sum_{i<j} L_ji z_i and its own conditional scale s_j = L_jj. Averages with the
+same number of levels and rule types are evaluated together (per-tuple exponents), which
+keeps the traced program small (about six groups).
 
-The one-dimensional rule per level is NOT Gauss-Hermite, by measurement (when this was
-written, scipy.integrate.quad as reference): for E[g'(u)^2] with g = tanh and Var u = 5,
-Gauss-Hermite with 64 nodes is off by 2e-3 (1e-2 for E[g'^2 g^2]); its nodes spread to
-|z| ~ 16 where the Gaussian weight is 1e-56, while the integrand changes on the scale
-1/sqrt(Var u) near z = 0 (tanh has poles at +-i pi/2). The equally spaced rule with
-Gaussian weights on [-z_max, z_max] (the trapezoidal rule, exponentially convergent for
-integrands analytic in a strip) reaches 1e-8 there with 48 nodes and is as good or
-better than Gauss-Hermite in every smooth case we measured except sigmoid at unit
-variance, where both are below 1e-8. Smooth levels (erf, tanh, sigmoid, linear) use it.
-Levels whose function has a kink or jump at 0 (relu and its step derivative) use
-Gauss-Legendre pieces split at the kink z = -m_j / s_j and at the Gaussian's centre
-z = 0; the plain rules converge only algebraically there (1e-2 for E[step step]).
+The one-dimensional rule per level is NOT Gauss-Hermite, by measurement (reference
+scipy.integrate.quad): for E[g'(u)^2] with g = tanh and Var u = 5, Gauss-Hermite with 64
+nodes is off by 2e-3 (1e-2 for E[g'^2 g^2]); its nodes spread to |z| ~ 16 where the
+Gaussian weight is 1e-56, while the integrand changes on the scale 1/sqrt(Var u) near
+z = 0 (tanh has poles at +-i pi/2). The equally spaced rule with Gaussian weights on
+[-z_max, z_max] (trapezoidal rule, exponentially convergent for integrands analytic in a
+strip) reaches 1e-8 there with 48 nodes, and was as good or better than Gauss-Hermite in
+every smooth case measured except sigmoid at unit variance (both below 1e-8). Smooth
+levels (erf, tanh, sigmoid, linear) use it. Levels whose function has a kink or jump at
+0 (relu, its step derivative) use Gauss-Legendre pieces split at the kink z = -m_j / s_j
+and at the Gaussian's centre z = 0; plain rules converge only algebraically there (1e-2
+for E[step step] with 64 nodes). A level carrying f nonlinear factors (g'^2 g^2 from
+repeated indices) gets sqrt(f) times the nodes, averages with one or two levels get
+LOW_DIMENSION_FACTOR times more: they are cheap and their integrands the sharpest.
 
-Default points per dimension (``DEFAULT_POINTS``) and measured accuracy
------------------------------------------------------------------------
-Worst absolute error over random covariances with the given diagonal, all correlations
-allowed, for the full I2/I3/I4/J0 set (K = M = 2), reference = the closed forms for
-erf (forced quadrature) or the same scheme at 64 nodes per dimension otherwise:
+Default points per dimension (``DEFAULT_POINTS``; a pair uses the larger) and accuracy
+-------------------------------------------------------------------------------------
+Worst absolute error over all entries of I2/I3/I4/J0 (K = M = 2), three random
+covariances per column with the given diagonal and smallest correlation-matrix
+eigenvalue >= 0.05; reference = the closed forms for erf (forced quadrature), the same
+scheme at 64 points otherwise (measured when this was written):
 
-    activation  points  diag 1      diag 2      diag 5
-    erf         24      ~2e-9       ~3e-8       ~2e-5
-    sigmoid     16      ~2e-9       ~1e-8       ~1e-6
-    tanh        24      ~3e-7       ~9e-6       ~8e-4
-    relu        30      ~2e-6 (I2, J0 vs the arc-cosine kernels of Cho & Saul 2009:
-                        ~1e-7; I3, I4 vs Monte Carlo and 64 nodes)
+    student/teacher  points  diag 1   diag 2   diag 5
+    erf/erf          24      4e-9     3e-9     7e-7
+    erf/tanh         24      5e-9     2e-7     3e-5
+    tanh/tanh        24      2e-7     4e-6     5e-4
+    sigmoid/sigmoid  16      9e-9     7e-9     1e-6
+    relu/relu        30      5e-8     6e-8     2e-7
 
-(re-measure with benchmarks/bench_gaussian_averages.py). tanh at large variance is
-intrinsically expensive for any product rule: ~1e-7 at diag 5 needs ~48 points per
-dimension, i.e. ~13x the cost; pass ``points`` explicitly if that matters.
+relu against closed forms: I2 against the degree-1 arc-cosine kernel and J0 against the
+degree-0 one (Cho & Saul 2009) agree to <= 1e-8 (tests/test_gaussian_averages.py checks
+1e-7 and 1e-6 including singular covariances). relu's remaining error sits in the
+three-level (4-variable) I4 entries and grows when the covariance is nearly singular
+(kinks of nearly collinear variables that no split point sees): up to ~6e-4 at diagonal
+5 with a smallest correlation eigenvalue of 1e-3. Exactly singular erf covariances
+(a student unit equal to a teacher unit) reach ~3e-7 at diagonal ~2. tanh at large
+variance is intrinsically expensive for product rules: 1e-7 at diagonal 5 needs ~48
+points; pass ``points`` when that matters (cost grows as points^4 for K, M >= 2).
+
+Cost: the number of four-variable averages grows like K^2 M^2 (1 for K = M = 2, 18 for
+K = M = 3, each points^4 nodes), so quadrature is practical for small networks only;
+erf/erf and linear/linear use closed forms at any size.
 
 All functions take a single covariance; K, student, teacher, points and method are
 static (Python values), so callers jit and vmap over a leading batch of covariances.
@@ -68,8 +86,7 @@ from __future__ import annotations
 
 import math
 from collections import defaultdict
-from collections.abc import Callable
-from functools import cache
+from functools import cache, partial
 from typing import NamedTuple
 
 import jax
@@ -90,7 +107,7 @@ CLOSED_FORM_PAIRS: tuple[str, ...] = ("erf", "linear")
 KINKED_ACTIVATIONS: frozenset[str] = frozenset({"relu", "sign"})
 """Activations (or derivatives) not smooth at 0; their levels use the split rule."""
 
-DEFAULT_POINTS: dict[str, int] = {"erf": 20, "linear": 16, "sigmoid": 16, "tanh": 24, "relu": 30}
+DEFAULT_POINTS: dict[str, int] = {"erf": 24, "linear": 16, "sigmoid": 16, "tanh": 24, "relu": 30}
 """Nodes per dimension; a student/teacher pair uses the larger of its two entries.
 Chosen by measurement (module docstring)."""
 
@@ -207,17 +224,25 @@ def _linear_closed_form(cov: Array, K: int) -> Averages:
 # An average is a product of factors, each tied to one variable: D (student derivative),
 # G (activation of that unit), X (the variable itself). Grouped by variable, a factor
 # "slot" is (owner, nD, nG, nX) with owner "s"/"t" (student/teacher activation) or "-"
-# for a purely polynomial slot. Averages with the same ordered list of slot kinds form a
-# group that is evaluated in one vectorised call over the group's variable tuples.
+# for a purely polynomial slot. A slot is integrated either by quadrature over its own
+# normal variable ("level"), or exactly: u^p (polynomial) and u^p 1{u > 0} (every relu
+# slot, "truncated") have closed-form conditional averages. Averages with the same number
+# of quadrature levels, the same rule type per level and the same exact tail form one
+# group, evaluated in one vectorised pass over its tuples; the exponents are per-tuple
+# data, so there are few groups (few operations to trace and compile).
 
 Kind = tuple[str, int, int, int]  # (owner, nD, nG, nX)
+_OWNER_CODE = {"s": 0, "t": 1, "-": 2}
 
 
 class _Group(NamedTuple):
-    kinds: tuple[Kind, ...]  # level order, outermost first
-    variables: np.ndarray  # [T, d] int, variable index per slot
-    truncated_power: int | None  # p if the innermost non-polynomial slot is u^p 1{u > 0}, exact
-    polynomial_power: int | None  # p if the last slot is u^p (p = 1, 2), exact
+    variables: np.ndarray  # [T, d] variable index per slot, levels first, then the exact tail
+    owner: np.ndarray  # [T, d] 0 student, 1 teacher, 2 none
+    exponents: np.ndarray  # [T, d, 3] (nD, nG, nX)
+    kinked: tuple[bool, ...]  # per quadrature level: split rule (relu) or equispaced rule
+    level_points: tuple[int, ...]  # nodes per quadrature level
+    truncated: bool  # the tail holds a truncated power u^p 1{u > 0}
+    polynomial: bool  # the tail ends with a polynomial u^p
 
 
 class _Plan(NamedTuple):
@@ -242,8 +267,7 @@ def _slot_kind(var: int, counts: list[int], K: int, student: str, teacher: str) 
 def _exact_form(kind: Kind, student: str, teacher: str) -> tuple[bool, int] | None:
     """(truncated, p) if the slot is u^p (truncated False) or u^p 1{u > 0} (True), else None.
 
-    relu(u) = u 1{u > 0} and relu'(u) = 1{u > 0}, so every relu slot is a truncated power;
-    its conditional Gaussian average is closed form (``_exact_average``).
+    relu(u) = u 1{u > 0} and relu'(u) = 1{u > 0}, so every relu slot is a truncated power.
     """
     owner, nD, nG, nX = kind
     if owner == "-":
@@ -254,31 +278,44 @@ def _exact_form(kind: Kind, student: str, teacher: str) -> tuple[bool, int] | No
     return None
 
 
-def _order_key(slot: tuple[int, Kind], student: str, teacher: str) -> tuple:
-    var, kind = slot
-    exact = _exact_form(kind, student, teacher)
-    # Quadrature slots first, then truncated powers (a relu level integrated exactly needs
-    # no split rule), then polynomials (exact through their conditional mean); within a
-    # rank the order is fixed but arbitrary.
-    rank = 0 if exact is None else (1 if exact[0] else 2)
-    return (rank, kind, var)
+def _is_kinked(kind: Kind, student: str, teacher: str) -> bool:
+    owner, nD, nG, _ = kind
+    owner_name = student if owner == "s" else teacher
+    return (nD > 0 and student in KINKED_ACTIVATIONS) or (nG > 0 and owner_name in KINKED_ACTIVATIONS)
 
 
-def _exact_tail(kinds: tuple[Kind, ...], student: str, teacher: str) -> tuple[int | None, int | None]:
-    """(truncated power, polynomial power) of the exactly integrated innermost slots."""
-    forms = [_exact_form(kind, student, teacher) for kind in kinds]
-    polynomial = truncated = None
-    rest = list(forms)
-    if rest and rest[-1] is not None and not rest[-1][0] and rest[-1][1] in (1, 2):
-        polynomial = rest.pop()[1]
-    if rest and rest[-1] is not None and rest[-1][0]:
-        truncated = rest[-1][1]
-    return truncated, polynomial
+LOW_DIMENSION_FACTOR: dict[int, float] = {1: 3.0, 2: 1.5}
+"""Node multiplier for averages with one or two quadrature levels: they are cheap, and
+they carry the repeated-index averages (g'(u)^2 g(u)^2, ...) whose integrands are the
+least smooth."""
+
+
+def _level_points(kind: Kind, points: int, dims: int) -> int:
+    """Nodes for one level: a variable carrying f nonlinear factors (e.g. g'(u)^2 g(u)^2,
+    f = 4, from repeated indices) has features ~sqrt(f) narrower, so it gets sqrt(f) times
+    the nodes; averages with few levels get LOW_DIMENSION_FACTOR more."""
+    factors = kind[1] + kind[2]
+    return int(round(points * LOW_DIMENSION_FACTOR.get(dims, 1.0) * math.sqrt(max(factors, 1))))
+
+
+def _arrange(slots: list[tuple[int, Kind]], student: str, teacher: str) -> tuple[list, bool, bool]:
+    """Order one average's slots: quadrature levels (kinked first, then by descending
+    number of factors, so that boosted levels line up across a group), then the exact tail
+    (one truncated power, then one polynomial). Returns (ordered slots, truncated, polynomial)."""
+    forms = {var: _exact_form(kind, student, teacher) for var, kind in slots}
+    polynomials = [sl for sl in slots if forms[sl[0]] is not None and not forms[sl[0]][0]]
+    truncated = [sl for sl in slots if forms[sl[0]] is not None and forms[sl[0]][0]]
+    tail_polynomial = polynomials[-1:] if polynomials and polynomials[-1][1][3] in (1, 2) else []
+    tail_truncated = truncated[-1:]
+    tail = tail_truncated + tail_polynomial
+    levels = [sl for sl in slots if sl not in tail]
+    levels.sort(key=lambda sl: (not _is_kinked(sl[1], student, teacher), -(sl[1][1] + sl[1][2]), sl[0]))
+    return levels + tail, bool(tail_truncated), bool(tail_polynomial)
 
 
 @cache
-def _plan(K: int, P: int, student: str, teacher: str, outputs: tuple[str, ...]) -> _Plan:
-    """Unique averages needed for ``outputs``, grouped by slot kinds (numpy, trace time)."""
+def _plan(K: int, P: int, student: str, teacher: str, outputs: tuple[str, ...], points: int) -> _Plan:
+    """Unique averages needed for ``outputs``, grouped (numpy, at trace time)."""
     requests: dict[str, tuple[tuple[int, ...], list]] = {}
     if "I2" in outputs:
         requests["I2"] = ((P, P), [[(a, "G"), (b, "G")] for a in range(P) for b in range(P)])
@@ -301,8 +338,8 @@ def _plan(K: int, P: int, student: str, teacher: str, outputs: tuple[str, ...]) 
     if "J0" in outputs:
         requests["J0"] = ((K, K), [[(k, "D"), (l, "D")] for k in range(K) for l in range(K)])
 
-    unique: dict[tuple, tuple[tuple[Kind, ...], int]] = {}
-    members: dict[tuple[Kind, ...], list[tuple[int, ...]]] = defaultdict(list)
+    unique: dict[tuple, tuple[tuple, int]] = {}
+    members: dict[tuple, list[list[tuple[int, Kind]]]] = defaultdict(list)
     flat_of: dict[str, list] = {}
     for name, (_, factor_lists) in requests.items():
         positions = []
@@ -318,21 +355,37 @@ def _plan(K: int, P: int, student: str, teacher: str, outputs: tuple[str, ...]) 
             if not slots:  # every factor was 1 (g' of a linear student): the average is 1
                 positions.append(None)
                 continue
-            slots.sort(key=lambda slot: _order_key(slot, student, teacher))
-            key = tuple(slots)
+            ordered, truncated, polynomial = _arrange(slots, student, teacher)
+            key = tuple(ordered)
             if key not in unique:
-                kinds = tuple(kind for _, kind in slots)
-                unique[key] = (kinds, len(members[kinds]))
-                members[kinds].append(tuple(var for var, _ in slots))
+                n_levels = len(ordered) - truncated - polynomial
+                kinked = tuple(_is_kinked(kind, student, teacher) for _, kind in ordered[:n_levels])
+                group_key = (n_levels, kinked, truncated, polynomial)
+                unique[key] = (group_key, len(members[group_key]))
+                members[group_key].append(ordered)
             positions.append(unique[key])
         flat_of[name] = positions
 
     groups, offsets, total = [], {}, 0
-    for kinds in sorted(members):
-        variables = np.asarray(members[kinds], dtype=np.int64)
-        groups.append(_Group(kinds, variables, *_exact_tail(kinds, student, teacher)))
-        offsets[kinds] = total
-        total += len(variables)
+    for group_key in sorted(members):
+        n_levels, kinked, truncated, polynomial = group_key
+        tuples = members[group_key]
+        level_points = tuple(
+            max(_level_points(ordered[j][1], points, n_levels) for ordered in tuples) for j in range(n_levels)
+        )
+        groups.append(
+            _Group(
+                variables=np.array([[var for var, _ in ordered] for ordered in tuples], dtype=np.int64),
+                owner=np.array([[_OWNER_CODE[kind[0]] for _, kind in ordered] for ordered in tuples], dtype=np.int64),
+                exponents=np.array([[kind[1:] for _, kind in ordered] for ordered in tuples], dtype=np.int64),
+                kinked=kinked,
+                level_points=level_points,
+                truncated=truncated,
+                polynomial=polynomial,
+            )
+        )
+        offsets[group_key] = total
+        total += len(tuples)
 
     index = {}
     for name, (shape, _) in requests.items():
@@ -340,10 +393,10 @@ def _plan(K: int, P: int, student: str, teacher: str, outputs: tuple[str, ...]) 
         index[name] = np.asarray(flat, dtype=np.int64).reshape(shape)
     width = max((g.variables.shape[1] for g in groups), default=1)
     padded = np.full((max(total, 1), width), P, dtype=np.int64)
-    for group in groups:
-        start = offsets[group.kinds]
+    group_offsets = tuple(offsets[key] for key in sorted(members))
+    for group, start in zip(groups, group_offsets, strict=True):
         padded[start : start + len(group.variables), : group.variables.shape[1]] = group.variables
-    return _Plan(tuple(groups), tuple(offsets[g.kinds] for g in groups), padded, index)
+    return _Plan(tuple(groups), group_offsets, padded, index)
 
 
 # --------------------------------------------------------------------------- 1-D rules
@@ -401,26 +454,45 @@ def _centred_split_rule(points: int) -> tuple[np.ndarray, np.ndarray]:
     return nodes, weights
 
 
+def _level_rule(group: _Group, j: int, mean: Array, scale: Array) -> tuple[Array, Array]:
+    """Nodes and weights in z for level j (static [n], or [T, R, n] for inner split levels)."""
+    n = group.level_points[j]
+    if not group.kinked[j]:
+        return tuple(jnp.asarray(a, mean.dtype) for a in _equispaced_rule(n))
+    if j == 0:
+        return tuple(jnp.asarray(a, mean.dtype) for a in _centred_split_rule(n))
+    positive = scale[..., 0] > 0
+    cut = jnp.where(positive, -mean / jnp.where(positive, scale[..., 0], 1.0), 0.0)  # u = 0 there
+    return _split_rule(cut, n)
+
+
 # --------------------------------------------------------------------------- quadrature evaluation
 
 
-def _slot_function(kind: Kind, student: Activation, teacher: Activation) -> Callable[[Array], Array]:
-    owner, nD, nG, nX = kind
-    activation = student if owner == "s" else teacher
+def _power(x: Array, n: Array) -> Array:
+    """x^n for per-tuple exponents n in {0, 1, 2} (broadcast), without pow's exp/log."""
+    return jnp.where(n == 0, 1.0, jnp.where(n == 1, x, x * x))
 
-    def evaluate(u: Array) -> Array:
-        value = jnp.ones_like(u)
-        if nD:
-            derivative = student.derivative(u)
-            value = value * derivative if nD == 1 else value * derivative * derivative
-        if nG:
-            g = activation.fn(u)
-            value = value * g if nG == 1 else value * g * g
-        if nX:
-            value = value * u if nX == 1 else value * u * u
-        return value
 
-    return evaluate
+def _level_values(group: _Group, j: int, u: Array, student: Activation, teacher: Activation) -> Array:
+    """D^nD G^nG u^nX at level j for every tuple (exponents broadcast over the nodes)."""
+    shape = (-1,) + (1,) * (u.ndim - 1)
+    nD, nG, nX = (group.exponents[:, j, i].reshape(shape) for i in range(3))
+    owner = group.owner[:, j].reshape(shape)
+    value = jnp.ones_like(u)
+    if group.exponents[:, j, 0].any():
+        value = value * _power(student.derivative(u), nD)
+    if group.exponents[:, j, 1].any():
+        has_student = (group.owner[:, j] == 0).any()
+        has_teacher = (group.owner[:, j] == 1).any()
+        if has_student and has_teacher and student.name != teacher.name:
+            g = jnp.where(owner == 0, student.fn(u), teacher.fn(u))
+        else:
+            g = (student if has_student else teacher).fn(u)
+        value = value * _power(g, nG)
+    if group.exponents[:, j, 2].any():
+        value = value * _power(u, nX)
+    return value
 
 
 def _truncated_moments(t: Array, order: int) -> list[Array]:
@@ -439,10 +511,15 @@ def _truncated_moments(t: Array, order: int) -> list[Array]:
     return moments[: order + 1]
 
 
-def _polynomial_coefficients(offset: Array, slope: Array, power: int) -> list[Array]:
-    """Coefficients in z of (offset + slope z)^power, power <= 3."""
-    binomial = {0: (1,), 1: (1, 1), 2: (1, 2, 1), 3: (1, 3, 3, 1)}[power]
-    return [b * offset ** (power - q) * slope**q for q, b in enumerate(binomial)]
+def _binomial_coefficients(offset: Array, slope: Array, power: Array, max_power: int) -> list[Array]:
+    """Coefficients in z of (offset + slope z)^power for per-tuple power <= max_power."""
+    out = []
+    for q in range(max_power + 1):
+        terms = 0.0
+        for p in range(q, max_power + 1):
+            terms = terms + jnp.where(power == p, math.comb(p, q) * offset ** (p - q), 0.0)
+        out.append(terms * slope**q)
+    return out
 
 
 def _multiply(a: list[Array], b: list[Array]) -> list[Array]:
@@ -453,57 +530,34 @@ def _multiply(a: list[Array], b: list[Array]) -> list[Array]:
     return out
 
 
-def _exact_tail_average(
-    L: Array, means: list[Array], truncated: int | None, polynomial: int | None
-) -> Array:
-    """Conditional average of the exactly integrated innermost slots, [T, R].
+def _exact_tail_average(group: _Group, L: Array, means: list[Array]) -> Array:
+    """Conditional average of the exactly integrated slots given the outer nodes.
 
     With z_c the truncated slot's own normal variable and z_b the polynomial's:
       u_c = m_c + s_c z_c,  u_b = m_b + beta z_c + s_b z_b,
-    the average of u_b^pb (u_c)^pc 1{u_c > 0} is a polynomial in z_c against the truncated
+    the average of u_b^pb u_c^pc 1{u_c > 0} is a polynomial in z_c against the truncated
     moments M_q(m_c / s_c); z_b enters only through E[z_b] = 0 and E[z_b^2] = 1. Without a
     truncated slot it is E[u_b] = m_b or E[u_b^2] = m_b^2 + s_b^2 (plain Gaussian moments).
     """
     d = L.shape[-1]
-    ndim = means[-1].ndim
-    entry = lambda i, j: L[:, i, j].reshape((-1,) + (1,) * (ndim - 1))  # noqa: E731 - broadcast over nodes
-    if polynomial is not None:
+    shape = (-1,) + (1,) * (means[-1].ndim - 1)
+    entry = lambda i, j: L[:, i, j].reshape(shape)  # noqa: E731 - broadcast over the nodes
+    exponent = lambda i: (group.exponents[:, i, 1] + group.exponents[:, i, 2]).reshape(shape)  # noqa: E731
+    if group.polynomial:
         b = d - 1
-        m_b, s_b = means[b], entry(b, b)
-    if truncated is None:
-        return m_b if polynomial == 1 else m_b * m_b + s_b * s_b
-    c = d - 1 if polynomial is None else d - 2
+        m_b, s_b, p_b = means[b], entry(b, b), exponent(b)
+        if not group.truncated:
+            return jnp.where(p_b == 1, m_b, m_b * m_b + s_b * s_b)
+    c = d - 2 if group.polynomial else d - 1
     m_c, s_c = means[c], entry(c, c)
-    coefficients = _polynomial_coefficients(m_c, s_c, truncated)
-    if polynomial is not None:
-        beta = entry(b, c)
-        factor = _polynomial_coefficients(m_b, beta, polynomial)
-        if polynomial == 2:
-            factor[0] = factor[0] + s_b * s_b
+    coefficients = _binomial_coefficients(m_c, s_c, exponent(c), 3)  # u^p 1{u>0}, p = nG + nX <= 3
+    if group.polynomial:
+        factor = _binomial_coefficients(m_b, entry(b, c), p_b, 2)
+        factor[0] = factor[0] + jnp.where(p_b == 2, s_b * s_b, 0.0)
         coefficients = _multiply(coefficients, factor)
     t = jnp.where(s_c > 0, m_c / jnp.where(s_c > 0, s_c, 1.0), jnp.where(m_c > 0, jnp.inf, -jnp.inf))
     moments = _truncated_moments(t, len(coefficients) - 1)
     return sum(coef * moment for coef, moment in zip(coefficients, moments, strict=True))
-
-
-LOW_DIMENSION_FACTOR: dict[int, float] = {1: 3.0, 2: 1.5}
-"""Node multiplier for averages with one or two quadrature levels: they are cheap, and
-they carry the repeated-index averages (g'(u)^2 g(u)^2, ...) whose integrands are the
-least smooth."""
-
-
-def _level_points(kind: Kind, points: int, dims: int) -> int:
-    """Nodes for one level: a variable carrying f nonlinear factors (e.g. g'(u)^2 g(u)^2,
-    f = 4, from repeated indices) has features ~sqrt(f) narrower, so it gets sqrt(f) times
-    the nodes. Such levels sit in low-dimensional averages, so this costs little."""
-    factors = kind[1] + kind[2]
-    return int(round(points * LOW_DIMENSION_FACTOR.get(dims, 1.0) * math.sqrt(max(factors, 1))))
-
-
-def _is_kinked(kind: Kind, student: str, teacher: str) -> bool:
-    owner, nD, nG, _ = kind
-    owner_name = student if owner == "s" else teacher
-    return (nD > 0 and student in KINKED_ACTIVATIONS) or (nG > 0 and owner_name in KINKED_ACTIVATIONS)
 
 
 def _triangular_factors(root: Array, variables: np.ndarray) -> Array:
@@ -523,21 +577,7 @@ def _triangular_factors(root: Array, variables: np.ndarray) -> Array:
     return lower * signs[:, None, :]
 
 
-def _level_rule(
-    kind: Kind, level: int, dims: int, mean: Array, scale: Array, points: int, student: str, teacher: str
-) -> tuple[Array, Array]:
-    """Nodes and weights in z for one level (static [n], or [T, R, n] for split levels)."""
-    n_level = _level_points(kind, points, dims)
-    if not _is_kinked(kind, student, teacher):
-        return tuple(jnp.asarray(a, mean.dtype) for a in _equispaced_rule(n_level))
-    if level == 0:
-        return tuple(jnp.asarray(a, mean.dtype) for a in _centred_split_rule(n_level))
-    positive = scale[..., 0] > 0
-    cut = jnp.where(positive, -mean / jnp.where(positive, scale[..., 0], 1.0), 0.0)  # u = 0 there
-    return _split_rule(cut, n_level)
-
-
-def _group_expectation(group: _Group, L: Array, points: int, student: Activation, teacher: Activation) -> Array:
+def _group_expectation(group: _Group, L: Array, student: Activation, teacher: Activation) -> Array:
     """E[prod_j f_j(u_{S_j})] for every variable tuple S of the group, nested over levels.
 
     ``L`` [T, d, d] holds the triangular factors (u_S = L z). Level j integrates z_j given
@@ -548,27 +588,24 @@ def _group_expectation(group: _Group, L: Array, points: int, student: Activation
     """
     T, d = group.variables.shape
     dtype = L.dtype
-    levels = d - (group.truncated_power is not None) - (group.polynomial_power is not None)
+    levels = len(group.level_points)
     means = [jnp.zeros((T, 1), dtype) for _ in range(d)]
     prefix = jnp.ones((T, 1), dtype)
     for j in range(levels):
-        kind = group.kinds[j]
         scale = L[:, j, j][:, None, None]
-        nodes, weights = _level_rule(kind, j, levels, means[j], scale, points, student.name, teacher.name)
-        value = weights * _slot_function(kind, student, teacher)(means[j][:, :, None] + scale * nodes)
+        nodes, weights = _level_rule(group, j, means[j], scale)
+        value = weights * _level_values(group, j, means[j][:, :, None] + scale * nodes, student, teacher)
         shifted = [means[i][:, :, None] + L[:, i, j][:, None, None] * nodes for i in range(j + 1, d)]
         if j == levels - 1:
             if levels < d:
-                tail_means = means[: j + 1] + shifted
-                value = value * _exact_tail_average(L, tail_means, group.truncated_power, group.polynomial_power)
+                value = value * _exact_tail_average(group, L, means[: j + 1] + shifted)
             return jnp.sum(prefix * jnp.sum(value, axis=-1), axis=-1)
         R, n = prefix.shape[1], value.shape[-1]
         prefix = (prefix[:, :, None] * value).reshape(T, R * n)
         for i, m in zip(range(j + 1, d), shifted, strict=True):
             means[i] = jnp.broadcast_to(m, (T, R, n)).reshape(T, R * n)
     # No quadrature level: the whole average is exact (a single polynomial or relu slot).
-    zero = [jnp.zeros((T, 1), dtype) for _ in range(d)]
-    return _exact_tail_average(L, zero, group.truncated_power, group.polynomial_power)[:, 0]
+    return _exact_tail_average(group, L, [jnp.zeros((T, 1), dtype) for _ in range(d)])[:, 0]
 
 
 def _covariance_root(cov: Array) -> Array:
@@ -581,20 +618,44 @@ def _covariance_root(cov: Array) -> Array:
 def _quadrature(
     cov: Array, K: int, student: str, teacher: str, points: int, outputs: tuple[str, ...]
 ) -> dict[str, Array]:
-    P = cov.shape[0]
-    plan = _plan(K, P, student, teacher, outputs)
-    root = _covariance_root(cov)
+    plan = _plan(K, cov.shape[0], student, teacher, outputs, points)
     s_act, t_act = get_activation(student), get_activation(teacher)
-    L = _triangular_factors(root, plan.padded_variables)
+    L = _triangular_factors(_covariance_root(cov), plan.padded_variables)
     values = []
     for group, offset in zip(plan.groups, plan.offsets, strict=True):
         T, d = group.variables.shape
-        values.append(_group_expectation(group, L[offset : offset + T, :d, :d], points, s_act, t_act))
+        values.append(_group_expectation(group, L[offset : offset + T, :d, :d], s_act, t_act))
     flat = jnp.concatenate(values + [jnp.ones((1,), cov.dtype)])
     return {name: flat[index] for name, index in plan.index.items()}
 
 
 # --------------------------------------------------------------------------- public API
+
+
+@partial(jax.jit, static_argnames=("K", "student", "teacher", "points", "closed", "outputs"))
+def _averages(
+    cov: Array, K: int, student: str, teacher: str, points: int, closed: bool, outputs: tuple[str, ...]
+) -> dict[str, Array]:
+    """Jitted core: compiled once per static configuration, so eager callers do not pay
+    op-by-op dispatch (thousands of small ops) and jitted callers simply inline it."""
+    if closed:
+        if student == "linear":
+            averages = _linear_closed_form(cov, K)
+        elif outputs == ("I2",):  # the pair kernel alone, without the I3/I4 tensors
+            one_plus = 1.0 + jnp.diagonal(cov)
+            ratio = cov / jnp.sqrt(one_plus[:, None] * one_plus[None, :])
+            return {"I2": _TWO_OVER_PI * jnp.arcsin(jnp.clip(ratio, -1.0, 1.0))}
+        else:
+            averages = _erf_closed_form(cov, K)
+        return {name: getattr(averages, name) for name in outputs}
+    return _quadrature(cov, K, student, teacher, points, outputs)
+
+
+def _dispatch(cov, K, student, teacher, points, method, outputs) -> dict[str, Array]:
+    _check(cov, K, student, teacher, points, method)
+    closed = method != "quadrature" and _has_closed_form(student, teacher)
+    n = default_points(student, teacher) if points is None else points
+    return _averages(cov, K, student, teacher, 0 if closed else n, closed, outputs)
 
 
 def gaussian_averages(
@@ -611,11 +672,7 @@ def gaussian_averages(
     ``points`` (nodes per dimension, quadrature only) defaults to ``default_points``;
     ``method="quadrature"`` forces quadrature where a closed form exists (for testing).
     """
-    _check(cov, K, student, teacher, points, method)
-    if method != "quadrature" and _has_closed_form(student, teacher):
-        return _erf_closed_form(cov, K) if student == "erf" else _linear_closed_form(cov, K)
-    n = default_points(student, teacher) if points is None else points
-    out = _quadrature(cov, K, student, teacher, n, ("I2", "I3", "I4", "J0"))
+    out = _dispatch(cov, K, student, teacher, points, method, ("I2", "I3", "I4", "J0"))
     return Averages(out["I2"], out["I3"], out["I4"], out["J0"])
 
 
@@ -629,15 +686,7 @@ def pair_averages(
     method: str = "auto",
 ) -> Array:
     """I2 [P, P] alone: at most two-dimensional integrals, much cheaper than the full set."""
-    _check(cov, K, student, teacher, points, method)
-    if method != "quadrature" and _has_closed_form(student, teacher):
-        if student == "linear":
-            return cov
-        one_plus = 1.0 + jnp.diagonal(cov)
-        ratio = cov / jnp.sqrt(one_plus[:, None] * one_plus[None, :])
-        return _TWO_OVER_PI * jnp.arcsin(jnp.clip(ratio, -1.0, 1.0))
-    n = default_points(student, teacher) if points is None else points
-    return _quadrature(cov, K, student, teacher, n, ("I2",))["I2"]
+    return _dispatch(cov, K, student, teacher, points, method, ("I2",))["I2"]
 
 
 def generalisation_error(
