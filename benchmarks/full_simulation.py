@@ -89,7 +89,7 @@ def make_floor(steps: int, **overrides):
 
         return jax.lax.fori_loop(0, blocks, body, jnp.zeros(train_key.shape[0], sim.dtype))
 
-    split = simulation._split_over_seeds(shard, s["run"]["seeds"])
+    split = simulation.split_over_seeds(shard, s["run"]["seeds"])
     compiled = jax.jit(split).lower(instance.train_key).compile()
     return compiled, (instance.train_key,), blocks * block
 

@@ -141,7 +141,7 @@ def init_ensemble(chain: Chain, seed_indices: np.ndarray | None = None) -> tuple
     ops = start.order_parameters
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
     keys = simulation.seed_keys(s, seed_indices)
-    train_key = jax.vmap(lambda key: simulation._split_seed_key(s, key)["train"])(keys)
+    train_key = jax.vmap(lambda key: simulation.split_seed_key(s, key)["train"])(keys)
     instance = ChainInstance(f64(ops.T), f64(start.teacher_v), train_key)
     params = {"Q": f64(ops.Q), "R": f64(ops.R), "v": f64(ops.v)}
     state = State(params, (), jnp.zeros(len(seed_indices), jnp.int64))
@@ -283,7 +283,7 @@ def make_advance(chain: Chain):
         return State(params, state.opt_state, jnp.full_like(state.step, jnp.maximum(start, target)))
 
     def advance(instance: ChainInstance, state: State, target: Array) -> State:
-        return simulation._split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
+        return simulation.split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
 
     return jax.jit(advance, donate_argnums=(1,))
 
@@ -303,6 +303,6 @@ def make_observe(chain: Chain):
     observe_shard = jax.vmap(observe_one)
 
     def observe(instance: ChainInstance, state: State) -> simulation.Observation:
-        return simulation._split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
+        return simulation.split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
 
     return jax.jit(observe)

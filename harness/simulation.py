@@ -6,19 +6,33 @@ jit-compiled once per shape:
 * :func:`init_ensemble` draws each seed's fixed *instance* (teacher, data-model
   parameters, held-out test set) and its initial *state* (student weights, optimizer
   state, step counter);
-* :func:`advance` runs SGD until a target step, one fresh sample per step;
-* :func:`observe` measures the test error and the order parameters.
+* ``advance`` (:func:`make_advance`) runs SGD until a target step, one fresh sample per step;
+* ``observe`` (:func:`make_observe`) measures the test error and the order parameters.
 
 Random numbers. Each seed ``s`` has its own key ``fold_in(PRNGKey(run.seed), s)``, split
 into teacher / student / data-model / training-stream / test-set keys (the teacher and
 data-model keys come from one run-wide key when ``run.shared_teacher`` is set). The
-sample used at SGD step ``i`` is drawn from ``fold_in(training_key, i)``, so the training
-stream depends neither on how steps are grouped into blocks nor on the evaluation times:
-``run.block_steps`` is a pure speed setting, and a run can stop and resume anywhere.
+sample used at SGD step ``i`` is drawn from ``fold_in(training_key, i)`` (steps from 2**32
+on fold in their high word too), so the training stream depends neither on how steps are
+grouped into blocks nor on the evaluation times nor on the number of devices:
+``run.block_steps`` is a pure speed setting, and a run can stop and resume anywhere with
+bit-identical results. All draws go through :mod:`harness.threefry`, which gives the bits of
+``jax.random`` (tested) several times faster on CPU.
 
-Blocks. Samples are drawn ``block_steps`` at a time (teacher labels computed as one
-matrix product for the block), then a ``lax.scan`` applies the steps one by one. A block
-that straddles the current step or the target masks the steps outside ``[step, target)``.
+Speed. The cost of a step is dominated by drawing its N Gaussian inputs; the update is
+O(K N). So the loop is built around the draw (benchmarks/RESULTS.md has the figures):
+
+* blocks of ``block_steps`` steps are drawn at once, seed by seed in a ``lax.map`` so that
+  each input is computed once and stored (XLA would otherwise recompute the draw for each
+  of its consumers), and the teacher's labels follow as one matrix product per block;
+* a ``fori_loop`` applies the block's steps one by one (jax.grad of the per-sample loss,
+  through the optax transformation), while the next block is drawn: the two are
+  independent, so XLA may overlap them; a block that overshoots the target masks its
+  extra steps;
+* all seeds are at the same step, so the loop runs on one scalar counter;
+* seeds are split across XLA CPU devices (one per core, set up in harness/__init__.py),
+  each device running its share of the seeds in its own loop (:func:`seed_mesh`);
+* the block size defaults to what keeps a device's block in cache (:func:`default_block_steps`).
 """
 
 from __future__ import annotations
@@ -169,7 +183,7 @@ def place_on_devices(tree: Any, count: int) -> Any:
     return tree if mesh is None else jax.device_put(tree, NamedSharding(mesh, PartitionSpec("seeds")))
 
 
-def _split_over_seeds(fn: Any, count: int, replicated: int = 0) -> Any:
+def split_over_seeds(fn: Any, count: int, replicated: int = 0) -> Any:
     """``fn`` run on each device's share of the seeds (all arguments but the last ``replicated`` are split)."""
     mesh = seed_mesh(count)
     if mesh is None:
@@ -217,11 +231,13 @@ def sample_loss(scenario: Scenario, params: dict[str, Array], x: Array, y: Array
 
 
 def seed_keys(scenario: Scenario, seed_indices: np.ndarray) -> Array:
+    """Each seed's key, ``fold_in(PRNGKey(run.seed), seed)``: ``[S, 2]``."""
     base = jax.random.PRNGKey(scenario["run"]["seed"])
     return threefry.fold_in(base, jnp.asarray(seed_indices, jnp.uint32))
 
 
-def _split_seed_key(scenario: Scenario, key: Array) -> dict[str, Array]:
+def split_seed_key(scenario: Scenario, key: Array) -> dict[str, Array]:
+    """A seed's key split into its teacher / student / data / train / test keys (shared teacher: run-wide)."""
     names = ("teacher", "student", "data", "train", "test")
     split = threefry.split(key, len(names))
     keys = {name: split[..., i, :] for i, name in enumerate(names)}
@@ -242,7 +258,7 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     n, d = sim.model.input_dim, sim.model.teacher_dim
 
     def one(key: Array, teacher_std: Array, student_std: Array) -> tuple[Array, ...]:
-        keys = _split_seed_key(s, key)
+        keys = split_seed_key(s, key)
         teacher_w = teacher_std * threefry.normal(keys["teacher"], (m, d), sim.dtype)
         student_w = student_std * threefry.normal(keys["student"], (k, n), sim.dtype)
         data_params = sim.model.init(keys["data"])
@@ -268,12 +284,12 @@ def init_ensemble(sim: Simulator, seed_indices: np.ndarray | None = None) -> tup
     test_samples = s["run"]["test_samples"]
 
     def test_set(key: Array, tw: Array, tv: Array, params: Any) -> tuple[Array, Array]:
-        x, c = sim.model.sample(params, _split_seed_key(s, key)["test"], test_samples)
+        x, c = sim.model.sample(params, split_seed_key(s, key)["test"], test_samples)
         return x, clean_labels(sim, tw, tv, c)
 
     keys = seed_keys(s, seed_indices)
     test_x, test_y = jax.jit(jax.vmap(test_set))(keys, teacher_w, teacher_v, data_params)
-    train_key = jax.vmap(lambda key: _split_seed_key(s, key)["train"])(keys)
+    train_key = jax.vmap(lambda key: split_seed_key(s, key)["train"])(keys)
     params = {"w": student_w, "v": student_v}
     opt_state = jax.vmap(sim.optimizer.init)(params)
     step = jnp.zeros(len(seed_indices), dtype=jnp.int64)
@@ -388,7 +404,7 @@ def make_advance(sim: Simulator):
         return State(params, opt_state, jnp.full_like(state.step, jnp.maximum(start, target)))
 
     def advance(instance: Instance, state: State, target: Array) -> State:
-        return _split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
+        return split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
 
     return jax.jit(advance, donate_argnums=(1,))
 
@@ -410,6 +426,6 @@ def make_observe(sim: Simulator):
     observe_shard = jax.vmap(lambda i, st: _observe_one(sim, i, st))
 
     def observe(instance: Instance, state: State) -> Observation:
-        return _split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
+        return split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
 
     return jax.jit(observe)
