@@ -77,7 +77,9 @@ SWEEP_MODES = ("grid", "zip")
 MAX_POINTS = 100_000
 SWEEP_JSON = "sweep.json"
 SINGLE_THREAD_XLA_FLAGS = "--xla_cpu_multi_thread_eigen=false intra_op_parallelism_threads=1"
-"""One XLA thread per worker process: a sweep parallelises over points, not inside them."""
+WORKER_ENVIRONMENT = {"XLA_FLAGS": SINGLE_THREAD_XLA_FLAGS, "HARNESS_CPU_DEVICES": "1"}
+"""Set in every worker process before it starts: one XLA CPU device and no multi-threaded
+Eigen, so that a sweep parallelises over points, not inside them."""
 MAX_LOST_ATTEMPTS = 3
 """A point whose worker process died this many times while computing it is reported failed."""
 STALE_PARTIAL_S = 300.0
@@ -241,14 +243,28 @@ class PointTask(NamedTuple):
     checkpoint_dir: str
 
 
-def limit_xla_threads() -> None:
-    """Ask XLA for one CPU thread in this process (only effective before JAX first computes)."""
-    os.environ.setdefault("XLA_FLAGS", SINGLE_THREAD_XLA_FLAGS)
+@contextmanager
+def _worker_environment() -> Iterator[None]:
+    """:data:`WORKER_ENVIRONMENT` in ``os.environ`` while worker processes are started.
+
+    Workers must have it when they start: ``harness`` reads it at import, before any
+    code of ours runs in the worker. It is restored afterwards, so this process and the
+    other programs it starts keep their own setting.
+    """
+    saved = {name: os.environ.get(name) for name in WORKER_ENVIRONMENT}
+    os.environ.update(WORKER_ENVIRONMENT)
+    try:
+        yield
+    finally:
+        for name, value in saved.items():
+            if value is None:
+                os.environ.pop(name, None)
+            else:
+                os.environ[name] = value
 
 
 def compute_point(task: PointTask):
     """Run on a worker: compute one point and return its tables (a ``ComputedRun``)."""
-    limit_xla_threads()
     from harness.pipeline import compute_run
 
     with warnings.catch_warnings():
@@ -278,7 +294,7 @@ def usable_cores() -> int:
 
 
 class LocalExecutor:
-    """Worker processes on this machine, started with ``spawn``, one XLA thread each.
+    """Worker processes on this machine, started with ``spawn``, one XLA device and thread each.
 
     If a worker process dies (killed, out of memory), the pool breaks; the executor
     starts a new pool and the points that were in flight are computed again.
@@ -299,11 +315,12 @@ class LocalExecutor:
             self.processes = max(1, min(self.processes, points))
 
     def submit(self, task: PointTask) -> concurrent.futures.Future:
-        if self._pool is None:
-            self._pool = concurrent.futures.ProcessPoolExecutor(
-                self.processes, mp_context=multiprocessing.get_context("spawn"), initializer=limit_xla_threads
-            )
-        future = self._pool.submit(compute_point, task)
+        with _worker_environment():  # worker processes are started inside submit
+            if self._pool is None:
+                self._pool = concurrent.futures.ProcessPoolExecutor(
+                    self.processes, mp_context=multiprocessing.get_context("spawn")
+                )
+            future = self._pool.submit(compute_point, task)
         self._origin[future] = self._pool
         return future
 
@@ -417,7 +434,7 @@ def local_dask_executor(workers: int) -> DaskExecutor:
 
     cluster = LocalCluster(
         n_workers=workers, processes=True, threads_per_worker=1, dashboard_address=None,
-        silence_logs=logging.ERROR, env={"XLA_FLAGS": SINGLE_THREAD_XLA_FLAGS},
+        silence_logs=logging.ERROR, env=dict(WORKER_ENVIRONMENT),
     )
     plural = "es" if workers != 1 else ""
     return DaskExecutor(Client(cluster), cluster, f"dask LocalCluster of {workers} worker process{plural}")
@@ -486,9 +503,8 @@ def jobqueue_options(table: dict[str, Any]) -> tuple[dict[str, Any], int]:
     options.setdefault("processes", table["cores"])
     if options["processes"] > table["cores"]:
         raise SweepError("sweep key 'jobqueue.processes': must be at most jobqueue.cores (one thread per process)")
-    options["job_script_prologue"] = [f"export XLA_FLAGS='{SINGLE_THREAD_XLA_FLAGS}'"] + options.get(
-        "job_script_prologue", []
-    )
+    exports = [f"export {name}='{value}'" for name, value in WORKER_ENVIRONMENT.items()]
+    options["job_script_prologue"] = exports + options.get("job_script_prologue", [])
     return options, int(table.get("jobs", 1))
 
 

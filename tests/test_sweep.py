@@ -167,7 +167,8 @@ def test_jobqueue_options_come_from_the_config_section():
         "cores": 8, "memory": "16GB", "walltime": "02:00:00", "queue": "short", "account": "proj42",
         "job_extra_directives": ["--constraint=cpu"],
         "processes": 8,  # one single-threaded worker process per core
-        "job_script_prologue": [f"export XLA_FLAGS='{sweep.SINGLE_THREAD_XLA_FLAGS}'", "module load python"],
+        "job_script_prologue": [f"export XLA_FLAGS='{sweep.SINGLE_THREAD_XLA_FLAGS}'",
+                                "export HARNESS_CPU_DEVICES='1'", "module load python"],
     }
 
 
@@ -368,7 +369,7 @@ def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_a
     plan, local_out, _, _ = killed_and_resumed
     plan = plan._replace(points=plan.points[:2], scenarios=plan.scenarios[:2], run_ids=plan.run_ids[:2])
     cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None,
-                           silence_logs=logging.CRITICAL, env={"XLA_FLAGS": sweep.SINGLE_THREAD_XLA_FLAGS})
+                           silence_logs=logging.CRITICAL, env=dict(sweep.WORKER_ENVIRONMENT))
     client = Client(cluster)
     killed: list[str] = []
 
@@ -403,11 +404,18 @@ def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_a
 
 
 THEORY_THAT_FAILS_AT_LARGE_RATES = '''
+import time
+from pathlib import Path
+
+import jax
 import numpy as np
 
 
 def predict(scenario, start, times):
+    # Where it runs: the worker process's XLA CPU devices (a sweep worker has one).
+    Path(__file__).with_name("worker_devices.txt").write_text(str(jax.device_count()))
     if scenario["sgd"]["learning_rate"] > 1.0:
+        time.sleep(2.5)  # long enough for the progress line to show this point running
         raise RuntimeError("no theory beyond eta = 1")
     teacher_overlap = start.order_parameters.T[:, 0, 0]  # T does not change during training
     return {"T[0,0]": np.repeat(teacher_overlap[:, None], len(times), axis=1)}
@@ -453,6 +461,7 @@ def test_a_failing_point_is_reported_and_the_others_complete(tmp_path, monkeypat
 
     killer = threading.Thread(target=kill_the_worker_once, daemon=True)
     killer.start()
+    environment_before = {name: os.environ.get(name) for name in sweep.WORKER_ENVIRONMENT}
     assert main(["sweep", str(path), "--out", str(out), "--processes", "1"]) == 1
     killer.join()
     assert killed
@@ -462,8 +471,13 @@ def test_a_failing_point_is_reported_and_the_others_complete(tmp_path, monkeypat
     assert "sweep point 0" not in captured.err  # its lost worker was replaced, not reported as a failure
     # The progress line counts done / running / failed and, once a point is finished, the time left.
     progress = [line for line in captured.err.splitlines() if line.startswith("sweep ") and "running" in line]
-    assert any(re.search(r"1 done, 1 running, 0 failed, 1 left .*~\d+s left", line) for line in progress)
+    # (Point 0, resubmitted after its worker died, may come after point 1.)
+    half = r"(1 done, 1 running, 0 failed|0 done, 1 running, 1 failed), 1 left .*~\d+s left"
+    assert any(re.search(half, line) for line in progress), captured.err
     assert "1 computed, 0 already complete, 1 failed" in captured.out
     record = json.loads((out / "sweep.json").read_text())
     assert record["status"] == ["computed", "failed"] and "no theory beyond eta = 1" in record["errors"]["1"]
     assert list(read_index(out)["run_id"]) == [record["run_ids"][0]]
+    # Each worker process computes on one XLA CPU device, whatever this process uses.
+    assert (tmp_path / "worker_devices.txt").read_text() == "1"
+    assert {name: os.environ.get(name) for name in sweep.WORKER_ENVIRONMENT} == environment_before
