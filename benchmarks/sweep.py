@@ -9,7 +9,10 @@ paired i.i.d. theory, comparison, storage) is run three times into fresh folders
   apart, and (dask time - local time) / points is the Dask path's overhead per point.
 
 Timings include worker start-up (spawning a process and importing JAX), which is part
-of what a user waits for. Other load on the machine distorts every number here: the
+of what a user waits for. Each executor starts with an empty persistent compilation
+cache (``HARNESS_COMPILATION_CACHE``), as a first sweep on a machine does; one more run
+of the 2-worker local sweep reuses its cache, as every later sweep of the same shapes does.
+Other load on the machine distorts every number here: the
 load average before and after is reported with them.
 
     python benchmarks/sweep.py            # prints a table
@@ -54,6 +57,12 @@ def _cpu_seconds() -> float:
     return own.ru_utime + own.ru_stime + children.ru_utime + children.ru_stime
 
 
+def _fresh_cache(out: Path) -> Path:
+    """Give the worker processes started from now on an empty compilation cache."""
+    os.environ["HARNESS_COMPILATION_CACHE"] = str(out.parent / f"{out.name}-cache")
+    return out
+
+
 def _timed(plan: sweep.SweepPlan, out: Path, executor) -> tuple[float, float]:
     """Wall time and CPU time (client + workers, which have exited when run_sweep returns)."""
     cpu, started = _cpu_seconds(), time.perf_counter()
@@ -70,13 +79,16 @@ def run(points: int = 16) -> list[dict]:
     with tempfile.TemporaryDirectory(prefix="harness-sweep-bench-") as tmp:
         folder = Path(tmp)
         plan = _plan(folder, points)
-        one, one_cpu = _timed(plan, folder / "local1", sweep.LocalExecutor(1))
-        two, two_cpu = _timed(plan, folder / "local2", sweep.LocalExecutor(2))
+        one, one_cpu = _timed(plan, _fresh_cache(folder / "local1"), sweep.LocalExecutor(1))
+        two, two_cpu = _timed(plan, _fresh_cache(folder / "local2"), sweep.LocalExecutor(2))
+        _fresh_cache(folder / "dask2")  # before the cluster starts: its workers inherit the setting
         cpu, started = _cpu_seconds(), time.perf_counter()
         executor = sweep.local_dask_executor(2)
         dask_startup = time.perf_counter() - started
         dask_two, _ = _timed(plan, folder / "dask2", executor)
         dask_cpu = _cpu_seconds() - cpu  # the cluster's processes have exited: start-up included
+        os.environ["HARNESS_COMPILATION_CACHE"] = str(folder / "local2-cache")  # filled by the local2 run
+        warm, warm_cpu = _timed(plan, folder / "local2-warm", sweep.LocalExecutor(2))
     load = f"load average {load_before:.1f} before, {os.getloadavg()[0]:.1f} after, {sweep.usable_cores()} cores"
     name = f"sweep of {points} points (N=100, 4 seeds, t=40, with theory)"
     return [
@@ -97,6 +109,8 @@ def run(points: int = 16) -> list[dict]:
          "unit": "cpu-s/point", "note": "client + workers"},
         {"benchmark": name, "quantity": "CPU per point, dask 2 workers", "value": dask_cpu / points,
          "unit": "cpu-s/point", "note": "client + scheduler + nannies + workers, cluster start-up included"},
+        {"benchmark": name, "quantity": "local, 2 workers, warm compilation cache", "value": warm, "unit": "s",
+         "note": f"{warm_cpu / points:.2f} cpu-s/point; {load}"},
     ]
 
 
