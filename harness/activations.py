@@ -12,7 +12,8 @@ g'(x) = sqrt(2 / pi) exp(-x^2 / 2).
 from __future__ import annotations
 
 import math
-from typing import Callable, NamedTuple
+from collections.abc import Callable
+from typing import NamedTuple
 
 import jax.numpy as jnp
 from jax.scipy.special import erf as _erf

@@ -11,8 +11,8 @@ from __future__ import annotations
 import argparse
 import sys
 import warnings
+from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Callable, Sequence
 
 from harness.errors import InputError
 

@@ -16,7 +16,8 @@ register a builder in :data:`BUILDERS`.
 
 from __future__ import annotations
 
-from typing import Any, Callable, NamedTuple
+from collections.abc import Callable
+from typing import Any, NamedTuple
 
 import jax
 

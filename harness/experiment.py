@@ -11,8 +11,9 @@ from __future__ import annotations
 
 import time
 import warnings
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable, NamedTuple
+from typing import NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -94,13 +95,16 @@ def simulate(
     stacked = jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)  # [S, E, ...]
     dyn = iid_theory.dynamics_of(scenario)
     teacher_v = np.broadcast_to(
-        np.asarray(scenario["teacher"]["second_layer"], np.float64), stacked.v.shape[:2] + (scenario["teacher"]["hidden"],)
+        np.asarray(scenario["teacher"]["second_layer"], np.float64),
+        stacked.v.shape[:2] + (scenario["teacher"]["hidden"],),
     )
     ops = iid_theory.OrderParameters(stacked.Q, stacked.R, stacked.T, stacked.v)
     with np.errstate(invalid="ignore"):
         overlap = np.asarray(iid_theory.overlap_error(dyn, ops, teacher_v))
     trained = scenario["student"]["train_second_layer"]
-    values = stack_observables(stacked.test_error, overlap, stacked.Q, stacked.R, stacked.T, stacked.v if trained else None)
+    values = stack_observables(
+        stacked.test_error, overlap, stacked.Q, stacked.R, stacked.T, stacked.v if trained else None
+    )
 
     # A seed is diverged from the first evaluation at which a weight is not finite (or
     # a measured value overflowed); it is NaN from then on and leaves every average.

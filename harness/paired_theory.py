@@ -13,7 +13,8 @@ Theory sources register in :data:`SOURCES` by prefix (``builtin``, and later
 
 from __future__ import annotations
 
-from typing import Any, Callable, NamedTuple
+from collections.abc import Callable
+from typing import Any, NamedTuple
 
 import jax
 import jax.numpy as jnp

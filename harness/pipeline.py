@@ -17,7 +17,8 @@ import jax
 import numpy as np
 import pandas as pd
 
-from harness import comparison, scenario as scenario_lib
+from harness import comparison
+from harness import scenario as scenario_lib
 from harness.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.experiment import ProgressFn, run_experiment, theory_only
 from harness.results_store import append_index_row, is_complete_run, write_run_folder
@@ -101,13 +102,13 @@ def compute_run(
     there every ``run.checkpoint_minutes`` and resumes from a checkpoint it finds.
     """
     run_id = scenario_lib.run_id(scenario)
-    started = _dt.datetime.now(_dt.timezone.utc)
+    started = _dt.datetime.now(_dt.UTC)
     result = run_experiment(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
     traj = result.trajectories
     summary = comparison.summarise(traj)
     metric_table = comparison.metrics(summary)
     diverged = [
-        {"seed": int(s), "t": float(t)} for s, t in zip(traj.seeds, result.diverged_at) if np.isfinite(t)
+        {"seed": int(s), "t": float(t)} for s, t in zip(traj.seeds, result.diverged_at, strict=True) if np.isfinite(t)
     ]
     manifest = base_manifest(scenario, run_id, started)
     manifest.update(
@@ -171,7 +172,7 @@ def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, fo
     folder = Path(out_dir) / run_id
     if is_complete_run(folder) and not force:
         return StoredRun(run_id, folder, True, None, None)
-    started = _dt.datetime.now(_dt.timezone.utc)
+    started = _dt.datetime.now(_dt.UTC)
     t, start, values, theory_s = theory_only(scenario)
     names = observable_names(
         scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]

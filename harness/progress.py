@@ -23,7 +23,7 @@ class Progress:
         self.started = time.perf_counter()
         self._last_tenth = -1
 
-    def __enter__(self) -> "Progress":
+    def __enter__(self) -> Progress:
         return self
 
     def __exit__(self, *exc: object) -> None:

@@ -18,9 +18,10 @@ import json
 import math
 import os
 import tomllib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from harness.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
 from harness.errors import InputError
