@@ -131,13 +131,16 @@ def evaluation_steps(scenario: Scenario) -> np.ndarray:
 
 
 def default_block_steps(scenario: Scenario) -> int:
-    """Steps per drawn block when ``run.block_steps`` is 0.
+    """Steps per drawn block when ``run.block_steps`` is 0 (measured: benchmarks/RESULTS.md).
 
-    A block of one device's inputs (its seeds x block x N numbers) is kept near 256 KiB, so
-    that it is drawn and read back while still in the core's cache: measured on 2 cores for
-    N = 500, 16 seeds (benchmarks/RESULTS.md), blocks of 8-32 steps ran 10-20% faster than
-    blocks of 128-256. Large inputs get blocks down to a single step, whose draw alone
-    dwarfs the loop's overhead.
+    i.i.d. inputs: a block of one device's inputs (its seeds x block x N numbers) is kept
+    near 256 KiB, so that it is drawn and read back while still in the core's cache; for
+    N = 500, 16 seeds, blocks of 8-32 steps ran up to 20% faster than blocks of 128-256.
+    Other data models compute their inputs with a product of the latent draws and the
+    instance's matrices (x = f(F^T c / sqrt(D)) for latent models): long blocks make that a
+    matrix-matrix product instead of re-reading F every few steps (N = 1000, D = 500:
+    block 128 ran twice as fast as block 8), so their blocks are kept near 4 MiB. Large
+    inputs get blocks down to a single step, whose draw alone dwarfs the loop's overhead.
     """
     chosen = scenario["run"]["block_steps"]
     if chosen > 0:
@@ -148,7 +151,8 @@ def default_block_steps(scenario: Scenario) -> int:
     itemsize = 8 if scenario["run"]["dtype"] == "float64" else 4
     data = scenario["data"]
     floats = per_device * max(data["input_dim"], data.get("latent_dim", 0) or 0) * itemsize
-    return int(np.clip(2 ** round(math.log2(max(1.0, (1 << 18) / floats))), 1, 256))
+    target = (1 << 18) if data["kind"] == "gaussian" else (1 << 22)
+    return int(np.clip(2 ** round(math.log2(max(1.0, target / floats))), 1, 256))
 
 
 def make_simulator(scenario: Scenario) -> Simulator:
