@@ -16,10 +16,7 @@ import platform
 import resource
 import time
 from collections.abc import Callable
-from importlib import metadata
 from typing import Any
-
-PACKAGES = ("jax", "jaxlib", "numpy", "scipy", "diffrax", "optax", "equinox")
 
 
 def load_average() -> float:
@@ -75,14 +72,11 @@ def machine() -> dict[str, Any]:
                     break
     except OSError:
         pass
-    versions = {}
-    for name in PACKAGES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            versions[name] = "not installed"
     import jax
 
+    from harness.pipeline import package_versions  # the versions a run's manifest records
+
+    versions = package_versions()
     return {
         "nproc": os.cpu_count(),
         "cpu": cpu_model,
