@@ -8,6 +8,14 @@ import jax
 # own dtype explicitly (run.dtype), so enabling 64-bit types here changes no default draw.
 jax.config.update("jax_enable_x64", True)
 
+# Equinox (which diffrax uses) turns its run-time checks into host callbacks by default, and
+# JAX will not keep a program with a host callback in its persistent compilation cache, so
+# every process would compile the theory's solver again (about 1.5 s of a default run). With
+# "nan" a failed check returns NaN instead of raising, which is what a failed solve already
+# returns here (harness.iid_theory.solve). It must be set before equinox is first imported;
+# a value the user set is kept.
+os.environ.setdefault("EQX_ON_ERROR", "nan")
+
 
 def _host_devices() -> int | None:
     """How many XLA CPU devices to expose; the simulator splits its seeds across them.

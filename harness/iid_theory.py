@@ -10,9 +10,9 @@ a = (v_1..K, -vt_1..M), Delta = sum_c a_c g_c(u_c):
   dQ_kl/dt = -eta v_k H[l, k] - eta v_l H[k, l] + eta^2 v_k v_l J[k, l]
   dv_k/dt  = -eta_v sum_c a_c I2(k, c)                     (second layer trained only)
 
-The system is integrated with diffrax (Tsit5, an adaptive 5th-order explicit Runge-Kutta
-pair, with a PID step-size controller at the scenario's rtol/atol), saved at the
-evaluation times, one solve per seed, vmapped over seeds, in float64.
+The system is integrated by :func:`harness.ode_solve.integrate` (diffrax's Tsit5 at the
+scenario's rtol/atol), saved at the evaluation times, one solve per seed, vmapped over
+seeds, in float64.
 """
 
 from __future__ import annotations
@@ -20,12 +20,12 @@ from __future__ import annotations
 import functools
 from typing import NamedTuple
 
-import diffrax
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 from harness.gaussian_averages import gaussian_averages, generalisation_error
+from harness.ode_solve import integrate
 from harness.scenario import Scenario
 
 Array = jax.Array
@@ -106,23 +106,9 @@ def _compiled_solver(dyn: Dynamics, rtol: float, atol: float, max_steps: int):
     """
 
     def one(ts: Array, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
-        term = diffrax.ODETerm(lambda t, y, args: vector_field(dyn, y, T, vt))
-        solution = diffrax.diffeqsolve(
-            term,
-            diffrax.Tsit5(),
-            t0=ts[0],
-            t1=ts[-1],
-            dt0=None,
-            y0=(Q0, R0, v0),
-            saveat=diffrax.SaveAt(ts=ts),
-            stepsize_controller=diffrax.PIDController(rtol=rtol, atol=atol),
-            max_steps=max_steps,
-            throw=False,
-        )
-        Q, R, v = solution.ys
-        ok = solution.result == diffrax.RESULTS.successful
-        nan = jnp.where(ok, 0.0, jnp.nan)  # a failed solve must not pass as a result
-        return Q + nan, R + nan, jnp.broadcast_to(T, ts.shape + T.shape), v + nan
+        field = lambda t, y: vector_field(dyn, y, T, vt)  # noqa: E731
+        (Q, R, v), _ = integrate(field, (Q0, R0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps)
+        return Q, R, jnp.broadcast_to(T, ts.shape + T.shape), v
 
     return jax.jit(jax.vmap(one, in_axes=(None, 0, 0, 0, 0, 0)))
 

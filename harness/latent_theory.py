@@ -26,8 +26,8 @@ binned into ``theory.bins`` equal-probability bins, and t(rho) = gamma (rho - ka
 It is paired with the seed through its exact Q, R, T and student norms (see
 :func:`thermodynamic_spectra`).
 
-Every solve is diffrax's Tsit5 with a PID step-size controller at the scenario's rtol and
-atol, one solve per seed (vmapped), float64, compiled once per shape and settings.
+Every solve is :func:`harness.ode_solve.integrate` (diffrax's Tsit5) at the scenario's rtol
+and atol, one solve per seed (vmapped), float64, compiled once per shape and settings.
 """
 
 from __future__ import annotations
@@ -37,13 +37,13 @@ import math
 import warnings
 from typing import Any, NamedTuple
 
-import diffrax
 import jax
 import jax.numpy as jnp
 import numpy as np
 
 from harness import feature_covariance, iid_theory
 from harness.errors import InputError
+from harness.ode_solve import integrate
 from harness.paired_theory import InitialState, Prediction, values_from_order_parameters
 from harness.scenario import Scenario
 
@@ -121,32 +121,20 @@ def _compiled_solver(dyn: iid_theory.Dynamics, rtol: float, atol: float, max_ste
             dQ, dR = aggregate(spec.rho, spec.weight, q - spec.q0, r - spec.r0)
             return Q0 + dQ, R0 + dR
 
-        def field(t: Array, y: tuple[Array, Array, Array], args: Any):
+        def field(t: Array, y: tuple[Array, Array, Array]):
             q, r, v = y
             Q, R = order_parameters(q, r)
             return projected_vector_field(dyn, q, r, v, Q, R, T, spec.rho, spec.t, vt)
 
-        def save(t: Array, y: tuple[Array, Array, Array], args: Any):
+        def save(t: Array, y: tuple[Array, Array, Array]):
             q, r, v = y
             Q, R = order_parameters(q, r)
             return Q, R, v
 
-        solution = diffrax.diffeqsolve(
-            diffrax.ODETerm(field),
-            diffrax.Tsit5(),
-            t0=ts[0],
-            t1=ts[-1],
-            dt0=None,
-            y0=(spec.q0, spec.r0, v0),
-            saveat=diffrax.SaveAt(ts=ts, fn=save),
-            stepsize_controller=diffrax.PIDController(rtol=rtol, atol=atol),
-            max_steps=max_steps,
-            throw=False,
+        (Q, R, v), steps = integrate(
+            field, (spec.q0, spec.r0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps, observe=save
         )
-        Q, R, v = solution.ys
-        ok = solution.result == diffrax.RESULTS.successful
-        nan = jnp.where(ok, 0.0, jnp.nan)  # a failed solve must not pass as a result
-        return Q + nan, R + nan, jnp.broadcast_to(T, (ts.shape[0],) + T.shape), v + nan, solution.stats["num_steps"]
+        return Q, R, jnp.broadcast_to(T, (ts.shape[0],) + T.shape), v, steps
 
     return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None)))
 
