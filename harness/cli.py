@@ -47,7 +47,8 @@ def print_run_summary(stored, scenario, *, stream=None) -> None:
         f"run {stored.run_id} -> {stored.folder}\n"
         f"  {s['run']['seeds']} seeds, N = {s['data']['input_dim']}, K = {s['student']['hidden']}, "
         f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}; simulation {timings['simulation_s']:.1f} s, "
-        f"theory {timings['theory_s']:.1f} s, compile {timings['compile_s']:.1f} s\n"
+        f"theory {timings['theory_s']:.2f} s; compiling: simulation {timings['compile_s']:.1f} s, "
+        f"theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
     )
     if stored.manifest.get("diverged_count"):
         stream.write(f"  {stored.manifest['diverged_count']} seed(s) diverged and left the averages\n")

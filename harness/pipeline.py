@@ -20,7 +20,7 @@ import pandas as pd
 from harness import comparison
 from harness import scenario as scenario_lib
 from harness.checkpoint import checkpoint_folder, discard_checkpoint
-from harness.experiment import ProgressFn, run_experiment, theory_only
+from harness.experiment import ProgressFn, run_experiment, theory_only, theory_timings
 from harness.results_store import append_index_row, is_complete_run, write_run_folder
 from harness.trajectories import Trajectories, observable_names
 
@@ -173,7 +173,7 @@ def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, fo
     if is_complete_run(folder) and not force:
         return StoredRun(run_id, folder, True, None, None)
     started = _dt.datetime.now(_dt.UTC)
-    t, start, values, theory_s = theory_only(scenario)
+    t, start, values, clock = theory_only(scenario)
     names = observable_names(
         scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
     )
@@ -183,7 +183,7 @@ def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, fo
     manifest = base_manifest(scenario, run_id, started)
     manifest.update(
         {"kind": "theory", "diverged_seeds": [], "diverged_count": 0, "paired": True, "evaluations": len(t),
-         "timings": {"simulation_s": 0.0, "theory_s": theory_s, "compile_s": 0.0}}
+         "timings": theory_timings(clock) | {"simulation_s": 0.0, "compile_s": 0.0}}
     )
     write_run_folder(
         out_dir, run_id,

@@ -1,0 +1,62 @@
+"""Run timings: the compile clock, and the theory's solver staying cacheable and NaN on failure."""
+
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from harness import iid_theory
+from harness import scenario as sc
+from harness.compile_clock import CompileClock, _union_length
+
+
+def test_union_of_nested_and_overlapping_spans_is_counted_once():
+    # [0, 4] contains [1, 2]; [3, 6] overlaps it; [8, 9] stands alone: union 6 + 1 = 7.
+    spans = [(1.0, 2.0), (0.0, 4.0), (3.0, 6.0), (8.0, 9.0)]
+    assert _union_length(spans, since=0.0) == 7.0
+    # spans clipped to the clock's start: [2.5, 4] U [3, 6] U [8, 9] -> 3.5 + 1
+    assert _union_length(spans, since=2.5) == 4.5
+
+
+def test_clock_sees_a_first_compilation_and_not_a_cached_call():
+    def f(x):
+        return jnp.sin(x) @ jnp.cos(x).T + 0.123456789  # a fresh function: nothing cached for it
+
+    compiled = jax.jit(f)
+    x = jnp.ones((3, 3))
+    with CompileClock() as first:
+        jax.block_until_ready(compiled(x))
+    with CompileClock() as second:
+        jax.block_until_ready(compiled(x))
+    assert 0.0 < first.compile_s <= first.total_s
+    assert second.compile_s == 0.0
+
+
+def _dyn_and_start():
+    scenario = sc.resolve({})
+    dyn = iid_theory.dynamics_of(scenario)
+    eye = np.eye(2)[None]
+    start = iid_theory.OrderParameters(Q=0.3 * eye, R=0.1 * eye, T=eye, v=np.ones((1, 2)))
+    return dyn, start
+
+
+def test_a_solve_that_runs_out_of_steps_returns_nan_not_numbers():
+    dyn, start = _dyn_and_start()
+    times = np.linspace(0.0, 50.0, 6)
+    failed = iid_theory.solve(dyn, start, np.ones((1, 2)), times, rtol=1e-10, atol=1e-12, max_steps=3)
+    assert np.all(np.isnan(np.asarray(failed.Q)))
+    fine = iid_theory.solve(dyn, start, np.ones((1, 2)), times, rtol=1e-10, atol=1e-12)
+    assert np.all(np.isfinite(np.asarray(fine.Q)))
+
+
+def test_the_solver_program_has_no_host_callback_so_the_persistent_cache_keeps_it():
+    # JAX does not write programs with host callbacks to its persistent compilation cache;
+    # equinox's default run-time checks are host callbacks (harness/__init__.py sets
+    # EQX_ON_ERROR=nan so that they are not). A callback shows up as a custom call.
+    dyn, start = _dyn_and_start()
+    solver = iid_theory._compiled_solver(dyn, 1e-6, 1e-8, 1000)
+    weights = (jnp.asarray(x) for x in (start.Q, start.R, start.T, start.v))
+    args = (jnp.linspace(0.0, 1.0, 3), *weights, jnp.ones((1, 2)))
+    text = solver.lower(*args).as_text()
+    assert "callback" not in text.lower()
