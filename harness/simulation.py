@@ -38,6 +38,7 @@ O(K N). So the loop is built around the draw (benchmarks/RESULTS.md has the figu
 from __future__ import annotations
 
 import math
+import os
 from typing import Any, NamedTuple
 
 import jax
@@ -49,6 +50,7 @@ from jax.sharding import Mesh, NamedSharding, PartitionSpec
 from harness import threefry
 from harness.activations import get_activation
 from harness.data_models import DataModel, build_data_model
+from harness.errors import InputError
 from harness.optimizers import make_optimizer
 from harness.scenario import Scenario
 
@@ -279,11 +281,47 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     return teacher_w, teacher_v, student_w, student_v, data_params
 
 
+def available_memory_bytes() -> int | None:
+    """Memory the machine can give this process now (Linux MemAvailable), or None if unknown."""
+    try:
+        with open("/proc/meminfo") as handle:
+            for line in handle:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    try:
+        return os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE")
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
+def check_test_set_fits(sim: Simulator, seeds: int, available: int | None = None) -> None:
+    """Refuse, before drawing anything, a held-out set larger than the machine's free memory.
+
+    Every seed keeps ``run.test_samples`` inputs of dimension N in memory for the whole run
+    (16 seeds x 10,000 samples x N = 100,000 in float32 is 64 GB); failing half-way through
+    the draw would take the machine down with it instead of saying what to change.
+    """
+    s = sim.scenario
+    needed = seeds * s["run"]["test_samples"] * s["data"]["input_dim"] * jnp.dtype(sim.dtype).itemsize
+    available = available_memory_bytes() if available is None else available
+    chain_would_do = (s["data"]["kind"], s["sgd"]["optimizer"]) == ("gaussian", "sgd")
+    if available is not None and needed > 0.8 * available:
+        raise InputError(
+            f"scenario key 'run.test_samples': the held-out sets need {needed / 2**30:.1f} GiB "
+            f"(seeds x test_samples x input_dim x {jnp.dtype(sim.dtype).itemsize} bytes) and this machine has "
+            f"{available / 2**30:.1f} GiB free; lower run.test_samples or run.seeds"
+            + (', or use run.engine = "chain"' if chain_would_do else "")
+        )
+
+
 def init_ensemble(sim: Simulator, seed_indices: np.ndarray | None = None) -> tuple[Instance, State]:
     """Draw every seed's instance (teacher, data model, test set) and initial state."""
     s = sim.scenario
     if seed_indices is None:
         seed_indices = np.arange(s["run"]["seeds"])
+    check_test_set_fits(sim, len(seed_indices))
     teacher_w, teacher_v, student_w, student_v, data_params = draw_initial_weights(sim, seed_indices)
     test_samples = s["run"]["test_samples"]
 

@@ -85,6 +85,17 @@ def test_cli_rejects_bad_file_with_status_2_and_writes_nothing(tmp_path, capsys)
     assert not out.exists()
 
 
+def test_a_held_out_set_too_large_for_the_machine_is_refused_before_any_work(tmp_path, capsys):
+    # 16 seeds x 10^6 samples x N = 10^5 in float32 is 6 TB: no machine running this has it.
+    scenario = tmp_path / "huge.toml"
+    scenario.write_text("[data]\ninput_dim = 100000\n[run]\nseeds = 16\ntest_samples = 1000000\n")
+    out = tmp_path / "out"
+    assert main(["run", str(scenario), "--out", str(out)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "run.test_samples" in err[0] and "GiB" in err[0] and "chain" in err[0]
+    assert not out.exists()
+
+
 def test_cli_missing_and_malformed_files(tmp_path, capsys):
     assert main(["run", str(tmp_path / "nope.toml"), "--out", str(tmp_path / "o")]) == 2
     assert "does not exist" in capsys.readouterr().err
