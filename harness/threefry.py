@@ -62,6 +62,10 @@ def _key_halves(key: Array) -> tuple[Array, Array]:
     return key[..., 0], key[..., 1]
 
 
+# fold_in and split are jit-compiled even when called eagerly (seed keys, instance keys):
+# op by op, the 20 rounds are ~100 dispatches per call, ~0.05 s each time (1.3 s of a
+# default run before). Integer arithmetic, so compiled and eager give the same bits.
+@partial(jax.jit, inline=True)
 def fold_in(key: Array, data: Array) -> Array:
     """``jax.random.fold_in(key, data)`` for raw keys ``[..., 2]``; ``data`` taken modulo 2**32, broadcast."""
     k1, k2 = _key_halves(key)
@@ -70,6 +74,7 @@ def fold_in(key: Array, data: Array) -> Array:
     return jnp.stack([o1, o2], axis=-1)
 
 
+@partial(jax.jit, static_argnames=("count",), inline=True)
 def split(key: Array, count: int) -> Array:
     """``jax.random.split(key, count)`` for raw keys ``[..., 2]``: new keys ``[..., count, 2]``."""
     k1, k2 = _key_halves(key)
