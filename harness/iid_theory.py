@@ -96,21 +96,42 @@ def vector_field(dyn: Dynamics, state: tuple[Array, Array, Array], T: Array, tea
     return dQ, dR, dv
 
 
+RATE_FIELDS = ("learning_rate", "second_layer_learning_rate", "noise_std")
+"""The numbers of :class:`Dynamics` that are inputs of the compiled solvers, not constants in them."""
+
+
+def split_rates(dyn: Dynamics) -> tuple[Dynamics, np.ndarray]:
+    """``dyn`` with its rates zeroed (what a solver is compiled for) and the rates (float64 [3]).
+
+    The rates enter the compiled program as run-time values, so the points of a sweep over
+    learning rates or label noise share one compiled solver (and its persistent-cache entry)
+    instead of tracing and compiling one each.
+    """
+    rates = np.array([getattr(dyn, field) for field in RATE_FIELDS], np.float64)
+    return dyn._replace(**dict.fromkeys(RATE_FIELDS, 0.0)), rates
+
+
+def with_rates(static: Dynamics, rates: Array) -> Dynamics:
+    """The inverse of :func:`split_rates` inside a compiled function (``rates`` traced)."""
+    return static._replace(**{field: rates[i] for i, field in enumerate(RATE_FIELDS)})
+
+
 @functools.cache
-def _compiled_solver(dyn: Dynamics, rtol: float, atol: float, max_steps: int):
+def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int):
     """The vmapped, jitted solve for one set of static settings, built once per process.
 
-    Evaluation times are an argument, so runs with the same dynamics and tolerances (the
-    sizes of a finite-size scan, the points of a sweep, baseline checks) compile once per
-    shape instead of once per call.
+    Evaluation times and rates are arguments, so runs with the same activations, sizes and
+    tolerances (the sizes of a finite-size scan, the learning rates of a sweep, baseline
+    checks) compile once per shape instead of once per call.
     """
 
-    def one(ts: Array, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
+    def one(ts: Array, rates: Array, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
+        dyn = with_rates(static, rates)
         field = lambda t, y: vector_field(dyn, y, T, vt)  # noqa: E731
         (Q, R, v), _ = integrate(field, (Q0, R0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps)
         return Q, R, jnp.broadcast_to(T, ts.shape + T.shape), v
 
-    return jax.jit(jax.vmap(one, in_axes=(None, 0, 0, 0, 0, 0)))
+    return jax.jit(jax.vmap(one, in_axes=(None, None, 0, 0, 0, 0, 0)))
 
 
 def solve(
@@ -129,9 +150,10 @@ def solve(
     ``[seeds, times, ...]``. Float64 throughout.
     """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
-    solver = _compiled_solver(dyn, float(rtol), float(atol), int(max_steps))
+    static, rates = split_rates(dyn)
+    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps))
     Q, R, T, v = solver(
-        f64(times), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
+        f64(times), f64(rates), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
     )
     return OrderParameters(Q, R, T, v)
 

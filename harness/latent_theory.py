@@ -111,10 +111,15 @@ def projected_vector_field(
 
 
 @functools.cache
-def _compiled_solver(dyn: iid_theory.Dynamics, rtol: float, atol: float, max_steps: int):
-    """The seed-vmapped, jit-compiled solve for one set of static settings (compiled per shape)."""
+def _compiled_solver(static: iid_theory.Dynamics, rtol: float, atol: float, max_steps: int):
+    """The seed-vmapped, jit-compiled solve for one set of static settings (compiled per shape).
 
-    def one(spec: Spectrum, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array):
+    The rates are run-time inputs (:func:`harness.iid_theory.split_rates`).
+    """
+
+    def one(spec: Spectrum, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array, rates: Array):
+        dyn = iid_theory.with_rates(static, rates)
+
         def order_parameters(q: Array, r: Array) -> tuple[Array, Array]:
             # offsets from the exact initial values, so that t = 0 returns the seed's Q0, R0
             # bit for bit (the eigen-sums agree with them only to rounding)
@@ -136,7 +141,7 @@ def _compiled_solver(dyn: iid_theory.Dynamics, rtol: float, atol: float, max_ste
         )
         return Q, R, jnp.broadcast_to(T, (ts.shape[0],) + T.shape), v, steps
 
-    return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None)))
+    return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None, None)))
 
 
 def solve_projected(
@@ -156,10 +161,11 @@ def solve_projected(
     the number of accepted steps per seed.
     """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
-    solver = _compiled_solver(dyn, float(rtol), float(atol), int(max_steps))
+    static, rates = iid_theory.split_rates(dyn)
+    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps))
     Q, R, T, v, steps = solver(
         Spectrum(*(f64(x) for x in spectra)),
-        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v), f64(times),
+        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v), f64(times), f64(rates),
     )
     ops = iid_theory.OrderParameters(np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(v))
     return ops, np.asarray(steps)
