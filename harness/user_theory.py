@@ -26,7 +26,9 @@
       the simulation). One mean curve makes the whole run unpaired: every per-seed array
       is then compared through its mean over seeds.
 
-    Observables left out are recorded as NaN (not compared). Values must be finite.
+    Observables left out are recorded as NaN (not compared). Values must be finite;
+    a diffrax solve that fails inside the function returns NaN rather than raising (the
+    harness sets ``EQX_ON_ERROR=nan``, see harness/__init__.py) and is reported as such.
     The module is imported normally; the working directory is searched after the
     installed packages, so ``python:examples.weight_decay_theory:predict`` works from the
     repository root.
