@@ -188,36 +188,41 @@ def describe_gaps(gaps: dict[str, float], n_seeds: int | None = None) -> str:
     ge, dyn = (gaps.get(name) for name in ("gaussian_equivalence_gap", "dynamics_gap"))
     ge, dyn = (np.nan if value is None else float(value) for value in (ge, dyn))  # manifests store NaN as null
 
+    def adjusted(z: float) -> float:
+        return z if n_seeds is None else float(adjusted_z(np.array([z]), np.array([n_seeds]))[0])
+
     def quiet(z: float) -> bool:
-        adjusted = z if n_seeds is None else float(adjusted_z(np.array([z]), np.array([n_seeds]))[0])
-        return bool(adjusted <= AGREEMENT_Z)
+        return bool(adjusted(z) <= AGREEMENT_Z)
+
+    def show(z: float) -> str:  # the raw |z| and, with few seeds, the adjusted one the verdict uses
+        return f"{z:.2f}" if n_seeds is None or np.isnan(z) else f"{z:.2f} [adjusted {adjusted(z):.2f}]"
 
     if np.isnan(ge) and np.isnan(dyn):
         return "no gaps to report (too few seeds or no theory)"
     if np.isnan(dyn):
         return (
             "Gaussian equivalence: test_error and the Gaussian formula on the simulation's own overlaps "
-            + ("agree" if quiet(ge) else "DISAGREE") + f" (max |z| {ge:.2f}); no theory to compare"
+            + ("agree" if quiet(ge) else "DISAGREE") + f" (max |z| {show(ge)}); no theory to compare"
         )
     if np.isnan(ge):
         return (
             "the theory and the simulation's own overlap_error " + ("agree" if quiet(dyn) else "DISAGREE")
-            + f" (max |z| {dyn:.2f}); no Gaussian-equivalence gap to report"
+            + f" (max |z| {show(dyn)}); no Gaussian-equivalence gap to report"
         )
     if quiet(ge) and quiet(dyn):
         return (
-            f"both gaps are within noise (max |z| {ge:.2f} for Gaussian equivalence, {dyn:.2f} for the dynamics): "
+            f"both gaps are within noise (max |z|: Gaussian equivalence {show(ge)}, dynamics {show(dyn)}): "
             "the data behave as Gaussian-equivalent and the equations follow the simulation"
         )
     if dyn >= ge:
         return (
-            f"the dynamics gap dominates (max |z| {dyn:.2f} vs {ge:.2f}): the equations, or their integration, "
-            "do not follow the simulation's own order parameters"
+            f"the dynamics gap dominates (max |z|: dynamics {show(dyn)}, Gaussian equivalence {show(ge)}): "
+            "the equations, or their integration, do not follow the simulation's own order parameters"
         )
     return (
-        f"the Gaussian-equivalence gap dominates (max |z| {ge:.2f} vs {dyn:.2f} for the dynamics): the measured "
-        "test error departs from the Gaussian formula on the simulation's own overlaps, so these data are not "
-        "Gaussian-equivalent at this size"
+        f"the Gaussian-equivalence gap dominates (max |z|: Gaussian equivalence {show(ge)}, dynamics {show(dyn)}): "
+        "the measured test error departs from the Gaussian formula on the simulation's own overlaps, "
+        "so these data are not Gaussian-equivalent at this size"
         + ("; the dynamics disagree too" if not quiet(dyn) else "; the equations themselves follow the overlaps")
     )
 
