@@ -59,12 +59,20 @@ def make_optimizer(scenario: Scenario) -> optax.GradientTransformation:
 def _layer_optimizer(sgd: dict, rate: float, decay: float) -> optax.GradientTransformation:
     """One layer's update rule at learning rate ``rate``, with L2 gradient ``decay * weights``."""
     kind = sgd["optimizer"]
+    # The learning rate lives in the optimizer's state (optax.inject_hyperparams), not in the
+    # compiled update as a constant: the points of a sweep over learning rates then run one
+    # and the same compiled program (one persistent-cache entry), and the update's
+    # arithmetic is unchanged (tests/test_optimizers.py checks the bits against the constant).
     if kind == "sgd":
-        rule = optax.sgd(rate)
+        rule = optax.inject_hyperparams(optax.sgd, static_args=("momentum", "nesterov"))(learning_rate=rate)
     elif kind == "momentum":
-        rule = optax.sgd(rate, momentum=sgd["momentum"], nesterov=sgd["nesterov"])
+        rule = optax.inject_hyperparams(optax.sgd, static_args=("momentum", "nesterov"))(
+            learning_rate=rate, momentum=sgd["momentum"], nesterov=sgd["nesterov"]
+        )
     elif kind == "adam":
-        rule = optax.adam(rate, b1=sgd["beta1"], b2=sgd["beta2"], eps=sgd["eps"])
+        rule = optax.inject_hyperparams(optax.adam, static_args=("b1", "b2", "eps"))(
+            learning_rate=rate, b1=sgd["beta1"], b2=sgd["beta2"], eps=sgd["eps"]
+        )
     else:  # resolve() has already rejected anything else
         raise AssertionError(kind)
     if decay == 0.0:

@@ -87,6 +87,45 @@ def test_momentum_zero_is_plain_sgd_bit_for_bit():
     assert np.all(np.isfinite(plain.values))
 
 
+@pytest.mark.parametrize("kind", ["sgd", "momentum", "adam"])
+def test_learning_rates_are_state_not_constants_and_the_simulation_is_unchanged(kind):
+    # The learning rate is carried in the optimizer state (optax.inject_hyperparams) so that a
+    # sweep over it runs one compiled program; the trajectory must be the very one that
+    # optax's plain transformation with the rate as a compile-time constant gives.
+    import jax
+    import jax.numpy as jnp
+    import optax
+
+    from harness import simulation
+
+    extra = {"sgd.momentum": 0.6} if kind == "momentum" else {}
+    s = scenario(**{"sgd.optimizer": kind, **extra})
+
+    def constant_rates(layer_rate_w: float, layer_rate_v: float) -> optax.GradientTransformation:
+        rule = {
+            "sgd": lambda rate: optax.sgd(rate),
+            "momentum": lambda rate: optax.sgd(rate, momentum=0.6),
+            "adam": lambda rate: optax.adam(rate),
+        }[kind]
+        return optax.multi_transform({"a": rule(layer_rate_w), "b": rule(layer_rate_v)}, {"w": "a", "v": "b"})
+
+    w_rate = 0.5 / np.sqrt(N) if kind == "adam" else 0.5
+    trained = []
+    for optimizer in (make_optimizer(s), constant_rates(w_rate, 0.3 / N)):
+        sim = simulation.make_simulator(s)._replace(optimizer=optimizer)
+        instance, state = simulation.init_ensemble(sim)
+        state = simulation.make_advance(sim)(instance, state, jnp.asarray(N * 3, state.step.dtype))
+        trained.append(jax.device_get(state.params))
+    assert np.array_equal(trained[0]["w"], trained[1]["w"]) and np.array_equal(trained[0]["v"], trained[1]["v"])
+
+    def program(rate: float) -> str:
+        sim = simulation.make_simulator(sc.with_overrides(s, {"sgd.learning_rate": rate}))
+        instance, state = simulation.init_ensemble(sim)
+        return simulation.make_advance(sim).lower(instance, state, jnp.asarray(1, state.step.dtype)).as_text()
+
+    assert program(0.5) == program(0.9)
+
+
 def test_adam_runs_and_learns():
     s = scenario(**{"sgd.optimizer": "adam", "student.train_second_layer": False})
     result = experiment.simulate(s)
