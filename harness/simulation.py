@@ -296,7 +296,7 @@ def available_memory_bytes() -> int | None:
         return None
 
 
-def check_test_set_fits(sim: Simulator, seeds: int, available: int | None = None) -> None:
+def check_test_set_fits(sim: Simulator, seeds: int) -> None:
     """Refuse, before drawing anything, a held-out set larger than the machine's free memory.
 
     Every seed keeps ``run.test_samples`` inputs of dimension N in memory for the whole run
@@ -305,7 +305,7 @@ def check_test_set_fits(sim: Simulator, seeds: int, available: int | None = None
     """
     s = sim.scenario
     needed = seeds * s["run"]["test_samples"] * s["data"]["input_dim"] * jnp.dtype(sim.dtype).itemsize
-    available = available_memory_bytes() if available is None else available
+    available = available_memory_bytes()
     chain_would_do = (s["data"]["kind"], s["sgd"]["optimizer"]) == ("gaussian", "sgd")
     if available is not None and needed > 0.8 * available:
         raise InputError(
