@@ -132,10 +132,30 @@ def _index_lock(out_dir: Path) -> Iterator[None]:
             fcntl.flock(lock, fcntl.LOCK_UN)
 
 
+def _remove_index_copies(out_dir: Path) -> None:
+    """Delete temporary copies of the index that killed writers left (call with the lock held).
+
+    Every writer of ``runs.parquet`` holds the index lock while its copy exists, and a
+    killed process's lock is released by the kernel; so while we hold the lock, any copy
+    found is a leftover, however young.
+    """
+    for leftover in out_dir.glob(f".{INDEX_NAME}.*.partial"):
+        leftover.unlink(missing_ok=True)
+
+
+def remove_index_leftovers(out_dir: str | Path) -> None:
+    """Delete the index's temporary copies that killed writers left in ``out_dir`` (if it exists)."""
+    out_dir = Path(out_dir)
+    if out_dir.is_dir():
+        with _index_lock(out_dir):
+            _remove_index_copies(out_dir)
+
+
 def append_index_row(out_dir: str | Path, row: dict[str, Any], *, key: str = "run_id") -> None:
     """Add ``row`` to ``out_dir/runs.parquet``, replacing an earlier row with the same key."""
     out_dir = Path(out_dir)
     with _index_lock(out_dir):
+        _remove_index_copies(out_dir)
         path = out_dir / INDEX_NAME
         new = pd.DataFrame([row])
         if path.exists():

@@ -71,7 +71,13 @@ from typing import Any, NamedTuple, TextIO
 from harness import scenario as scenario_lib
 from harness.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.errors import InputError
-from harness.results_store import append_index_row, atomic_write_json, is_complete_run, read_index
+from harness.results_store import (
+    append_index_row,
+    atomic_write_json,
+    is_complete_run,
+    read_index,
+    remove_index_leftovers,
+)
 
 SWEEP_MODES = ("grid", "zip")
 MAX_POINTS = 100_000
@@ -562,8 +568,10 @@ def _sweep_lock(out_dir: Path) -> Iterator[None]:
 def _remove_stale_partials(out_dir: Path, older_than_s: float = STALE_PARTIAL_S) -> None:
     """Remove temporary ``.*.partial`` files and folders that a killed writer left behind.
 
-    Only old ones: a young one may belong to a writer that is still at work.
+    Only old ones: a young one may belong to a writer that is still at work; copies of the
+    index are the exception, as its writers hold a lock (results_store.remove_index_leftovers).
     """
+    remove_index_leftovers(out_dir)
     now = time.time()
     places = [out_dir] + [p for p in (out_dir / ".checkpoints").glob("*") if p.is_dir()]
     for place in places:

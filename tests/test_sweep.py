@@ -23,7 +23,7 @@ from harness import simulation, sweep
 from harness.checkpoint import FILE_NAME
 from harness.cli import main
 from harness.experiment import simulate
-from harness.results_store import is_complete_run, read_index
+from harness.results_store import append_index_row, is_complete_run, read_index, remove_index_leftovers
 
 # Tiny points: N = 50, 2 seeds, t = 12, a checkpoint after every evaluation.
 TINY = """
@@ -288,6 +288,23 @@ def _visible_state_is_consistent(out: Path, run_ids: list[str]) -> pd.DataFrame:
         assert all(is_complete_run(out / run_id) for run_id in index["run_id"])
         assert set(index["run_id"]) <= set(run_ids)
     return index
+
+
+def test_copies_of_the_index_left_by_a_killed_writer_go_however_young(tmp_path):
+    # A writer killed while replacing runs.parquet leaves its temporary copy; the next writer
+    # (or a sweep starting) holds the index lock, so it knows the copy is nobody's and removes it.
+    leftover = tmp_path / ".runs.parquet.x1y2z3.partial"
+    leftover.write_bytes(b"half a parquet file")
+    other = tmp_path / ".abcdef.tmp.partial"  # a run folder being staged: may be someone's, kept
+    other.mkdir()
+    append_index_row(tmp_path, {"run_id": "r1", "value": 1.0})
+    assert not leftover.exists() and other.exists()
+    assert list(read_index(tmp_path)["run_id"]) == ["r1"]
+    leftover.write_bytes(b"again")
+    remove_index_leftovers(tmp_path)
+    assert not leftover.exists() and other.exists()
+    remove_index_leftovers(tmp_path / "no such folder")  # nothing to do, nothing created
+    assert not (tmp_path / "no such folder").exists()
 
 
 @pytest.fixture(scope="module")
