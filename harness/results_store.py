@@ -6,6 +6,10 @@ assembled under a hidden temporary name and renamed into place only when every f
 it is complete, so a folder named after a run_id is always a complete run. The index
 ``runs.parquet`` is rewritten under an exclusive lock, so concurrent writers (a sweep's
 points finishing together) never lose a row.
+
+Temporary names end in ``.partial`` and carry their writer's host and process id, so that
+a later process can tell the leftovers of a killed writer (:func:`is_abandoned`) from the
+work in progress of a live one.
 """
 
 from __future__ import annotations
@@ -14,7 +18,9 @@ import fcntl
 import io
 import json
 import os
+import re
 import shutil
+import socket
 import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
@@ -27,11 +33,43 @@ RUN_FILES = ("scenario.toml", "manifest.json", "trajectories.parquet", "summary.
 INDEX_NAME = "runs.parquet"
 
 
+def _host_tag() -> str:
+    return re.sub(r"[^A-Za-z0-9_]", "_", socket.gethostname()) or "host"
+
+
+def _temporary_prefix(name: str) -> str:
+    """``.NAME.HOST-PID.``: the start of a temporary name (a random part and ``.partial`` follow)."""
+    return f".{name}.{_host_tag()}-{os.getpid()}."
+
+
+_TEMPORARY_NAME = re.compile(r"\.(?P<host>[A-Za-z0-9_]+)-(?P<pid>[0-9]+)\.[A-Za-z0-9_]+\.partial$")
+
+
+def is_abandoned(path: str | Path) -> bool:
+    """True for a temporary ``.partial`` name whose writer was a process of this host that has ended.
+
+    False when in doubt (another host, a live process, an unknown name): only age can tell then.
+    """
+    match = _TEMPORARY_NAME.search(Path(path).name)
+    if match is None or match["host"] != _host_tag():
+        return False
+    pid = int(match["pid"])
+    if pid == os.getpid():
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return True
+    except OSError:  # exists but not ours to signal
+        return False
+    return False
+
+
 def atomic_write_bytes(path: str | Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see the old file or the new one, never a part."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    handle, temporary = tempfile.mkstemp(prefix=_temporary_prefix(path.name), suffix=".partial", dir=path.parent)
     try:
         with os.fdopen(handle, "wb") as stream:
             stream.write(data)
@@ -90,7 +128,7 @@ def staging_folder(out_dir: str | Path, name: str) -> Iterator[Path]:
     """A hidden folder in ``out_dir`` to assemble results in; removed if anything fails."""
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{name}.", suffix=".partial", dir=out_dir))
+    staging = Path(tempfile.mkdtemp(prefix=_temporary_prefix(name), suffix=".partial", dir=out_dir))
     try:
         yield staging
     except BaseException:

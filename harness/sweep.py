@@ -74,6 +74,7 @@ from harness.errors import InputError
 from harness.results_store import (
     append_index_row,
     atomic_write_json,
+    is_abandoned,
     is_complete_run,
     read_index,
     remove_index_leftovers,
@@ -568,8 +569,9 @@ def _sweep_lock(out_dir: Path) -> Iterator[None]:
 def _remove_stale_partials(out_dir: Path, older_than_s: float = STALE_PARTIAL_S) -> None:
     """Remove temporary ``.*.partial`` files and folders that a killed writer left behind.
 
-    Only old ones: a young one may belong to a writer that is still at work; copies of the
-    index are the exception, as its writers hold a lock (results_store.remove_index_leftovers).
+    Old ones, and young ones whose writer is known to have ended (results_store.is_abandoned);
+    any other young one may belong to a writer still at work. Copies of the index go whatever
+    their age, as its writers hold a lock (results_store.remove_index_leftovers).
     """
     remove_index_leftovers(out_dir)
     now = time.time()
@@ -577,7 +579,7 @@ def _remove_stale_partials(out_dir: Path, older_than_s: float = STALE_PARTIAL_S)
     for place in places:
         for leftover in place.glob(".*.partial"):
             try:
-                if now - leftover.lstat().st_mtime < older_than_s:
+                if now - leftover.lstat().st_mtime < older_than_s and not is_abandoned(leftover):
                     continue
                 if leftover.is_dir():
                     shutil.rmtree(leftover, ignore_errors=True)

@@ -23,7 +23,14 @@ from harness import simulation, sweep
 from harness.checkpoint import FILE_NAME
 from harness.cli import main
 from harness.experiment import simulate
-from harness.results_store import append_index_row, is_complete_run, read_index, remove_index_leftovers
+from harness.results_store import (
+    append_index_row,
+    is_abandoned,
+    is_complete_run,
+    read_index,
+    remove_index_leftovers,
+    staging_folder,
+)
 
 # Tiny points: N = 50, 2 seeds, t = 12, a checkpoint after every evaluation.
 TINY = """
@@ -305,6 +312,24 @@ def test_copies_of_the_index_left_by_a_killed_writer_go_however_young(tmp_path):
     assert not leftover.exists() and other.exists()
     remove_index_leftovers(tmp_path / "no such folder")  # nothing to do, nothing created
     assert not (tmp_path / "no such folder").exists()
+
+
+def test_temporary_names_tell_a_dead_writers_leftovers_from_live_work(tmp_path):
+    # A process that creates a temporary file the way the store does and dies without
+    # cleaning up: its leftover is abandoned. Our own, another host's, or an unknown name: not.
+    code = (
+        "import sys, tempfile; from harness.results_store import _temporary_prefix; "
+        "print(tempfile.mkstemp(prefix=_temporary_prefix('runs.parquet'), suffix='.partial', dir=sys.argv[1])[1])"
+    )
+    dead = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True, text=True, check=True)
+    leftover = Path(dead.stdout.strip())
+    assert leftover.exists() and is_abandoned(leftover)
+    with staging_folder(tmp_path, "some_run") as live:
+        assert not is_abandoned(live)
+    assert not is_abandoned(tmp_path / ".abc.otherhost-1.x1y2z3.partial")
+    assert not is_abandoned(tmp_path / ".abc.x1y2z3.partial")
+    sweep._remove_stale_partials(tmp_path)  # young, but its writer is gone: removed
+    assert not leftover.exists()
 
 
 @pytest.fixture(scope="module")
