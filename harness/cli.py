@@ -2,8 +2,10 @@
 
 Subcommands are registered by the modules that implement them through an
 ``add_commands(subparsers)``-style function; each handler returns the exit status.
-Exit statuses: 0 success, 1 a comparison that failed, 2 bad input (a one-line message
-on stderr, nothing written), 3 an inconclusive verdict (finite-size scaling).
+Exit statuses of commands that give a verdict (run, theory, scale; harness.judgement):
+0 agree (scale: consistent), 1 disagree (inconsistent), 3 inconclusive; 2 is bad input
+for every command (a one-line message on stderr, nothing written); other commands exit 0
+on success and 1 on a failure they report.
 """
 
 from __future__ import annotations
@@ -33,46 +35,83 @@ def _load_scenario(path: str | None):
     return scenario_lib.load(path)
 
 
+def _number(value, digits: int = 3) -> str:
+    return "-" if value is None or value != value else f"{value:.{digits}g}"
+
+
+def _seeds(value) -> str:
+    if value is None or value != value:
+        return "-"
+    return "none would" if value == float("inf") else f"about {int(value)}"
+
+
+def format_judgement(record: dict) -> list[str]:
+    """The verdict table of a run (judgement.json, harness.judgement), as terminal lines."""
+    lines = [
+        f"  {'group':<15}{'verdict':<14}{'|diff|/margin':>14}{'band/margin':>13}{'detectable':>12}"
+        f"{'departs':>10}  seeds to settle",
+        f"  {'':<15}{'':<14}{'(largest)':>14}{'(reach)':>13}{'from t':>12}{'from t':>10}",
+    ]
+    for g in record["groups"]:
+        verdict = g["verdict"].upper() if g["verdict"] == "disagree" else g["verdict"]
+        lines.append(
+            f"  {g['group']:<15}{verdict:<14}{_number(g['worst_ratio']):>14}{_number(g['reach']):>13}"
+            f"{_number(g['detected_t']):>12}{_number(g['departs_t']):>10}  {_seeds(g['seeds_needed'])}"
+        )
+    verdict = record["verdict"]
+    text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
+    if verdict == "inconclusive":
+        needed = record.get("seeds_needed")
+        text += (": no number of seeds would settle it at this margin" if needed is None or needed == float("inf")
+                 else f": about {int(needed)} seeds would settle it (an estimate from the measured spread)")
+    lines.append(text)
+    band = f"c = {_number(record['band_factor'])}, {record['band_method']}"
+    if record.get("band_cells"):
+        band += f" over {record['band_cells']} cells with {record['band_seeds']} seeds"
+    lines.append(
+        f"  (agree: the {100 * (1 - record['alpha']):.3g} % simultaneous band of theory - simulation lies within "
+        f"+-margin at every time; disagree: wholly outside it at some time;\n"
+        f"   margin = {record['margin']:g} x an error's value at each time (at least {record['floor']:g} x its "
+        f"largest), {record['margin']:g} x an order-parameter group's largest size; band = mean +- {band})"
+    )
+    return lines
+
+
 def print_run_summary(stored, scenario, *, stream=None) -> None:
-    """The short closing table: per observable group, max |z| and agreement."""
-    from harness.comparison import AGREEMENT_Z, group_verdicts
+    """The closing lines of a run: where it is, its cost, its verdict table and its gaps."""
+    from harness.comparison import describe_gaps
 
     stream = stream or sys.stdout
-    if stored.skipped:
-        stream.write(f"run {stored.run_id} already complete in {stored.folder} (use --force to redo)\n")
-        return
     timings = stored.manifest["timings"]
     s = scenario
+    if stored.skipped:
+        stream.write(f"run {stored.run_id} already complete in {stored.folder} (use --force to redo); stored:\n")
+    else:
+        stream.write(f"run {stored.run_id} -> {stored.folder}\n")
+    costs = f"theory {timings['theory_s']:.2f} s"
+    if stored.manifest.get("kind") != "theory":
+        costs = f"simulation {timings['simulation_s']:.1f} s, " + costs
     stream.write(
-        f"run {stored.run_id} -> {stored.folder}\n"
         f"  {s['run']['seeds']} seeds, N = {s['data']['input_dim']}, K = {s['student']['hidden']}, "
-        f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}; simulation {timings['simulation_s']:.1f} s, "
-        f"theory {timings['theory_s']:.2f} s; compiling: simulation {timings['compile_s']:.1f} s, "
-        f"theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
+        f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}; {costs}; compiling: simulation "
+        f"{timings['compile_s']:.1f} s, theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
     )
     if stored.manifest.get("diverged_count"):
         stream.write(f"  {stored.manifest['diverged_count']} seed(s) diverged and left the averages\n")
-    if stored.manifest.get("kind") == "theory":
+    if stored.manifest.get("kind") == "theory" or stored.judgement is None:
         return
-    verdicts = group_verdicts(stored.metrics)
-    stream.write(f"  {'observable':<15}{'max |z|':>9}{'adjusted':>10}  {'first |z|>3 run at t':>21}  verdict\n")
-    for _, row in verdicts.iterrows():
-        # iterrows turns a None verdict into NaN; both mean "nothing to compare" (n/a)
-        verdict = "n/a" if row["agree"] is None or row["agree"] != row["agree"] else (
-            "agree" if row["agree"] else "DISAGREE")
-        when = "-" if row["divergence_t"] != row["divergence_t"] else f"{row['divergence_t']:.3g}"
-        stream.write(
-            f"  {row['group']:<15}{row['max_abs_z']:>9.2f}{row['max_abs_z_adjusted']:>10.2f}  {when:>21}  {verdict}\n"
-        )
-    stream.write(
-        f"  (agree: adjusted |z| <= {AGREEMENT_Z:g} at every evaluation time; adjusted = |z| carried to the normal\n"
-        f"   scale through Student's t with seeds - 1 degrees of freedom)\n"
-    )
-    if "gaussian_equivalence_gap" in stored.manifest:
-        from harness.comparison import describe_gaps
+    for line in format_judgement(stored.judgement):
+        stream.write(line + "\n")
+    for line in describe_gaps(stored.judgement.get("gaps", {})):
+        stream.write(f"  {line}\n")
 
-        seeds = stored.manifest.get("seeds", 0) - stored.manifest.get("diverged_count", 0)
-        stream.write(f"  {describe_gaps(stored.manifest, seeds if seeds >= 2 else None)}\n")
+
+def verdict_status(stored) -> int:
+    """Exit status of a command that judged a run: 0 agree, 1 disagree, 3 inconclusive (harness.judgement)."""
+    from harness.judgement import EXIT_STATUS, NOT_JUDGED
+
+    verdict = stored.judgement["verdict"] if stored.judgement else NOT_JUDGED
+    return EXIT_STATUS[verdict]
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
@@ -88,7 +127,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
         stored = run_and_store(scenario, args.out, force=args.force, progress=report)
     print_run_summary(stored, scenario)
-    return 0
+    return verdict_status(stored)
 
 
 def _cmd_theory(args: argparse.Namespace) -> int:
@@ -97,11 +136,16 @@ def _cmd_theory(args: argparse.Namespace) -> int:
 
     stored = theory_and_store(scenario, args.out, force=args.force)
     print_run_summary(stored, scenario)
-    return 0
+    return verdict_status(stored)
 
 
 def _add_core_commands(subparsers) -> None:
-    run = subparsers.add_parser("run", help="simulate a scenario and pair it with its theory, seed by seed")
+    run = subparsers.add_parser(
+        "run", help="simulate a scenario and pair it with its theory, seed by seed",
+        description="Simulate a scenario, pair it with its theory seed by seed, judge and store it. Exit status: "
+        "0 agree, 1 disagree, 3 inconclusive (agreement within the scenario's [agreement] margin is shown, "
+        "disagreement is shown, or neither), 2 bad input.",
+    )
     run.add_argument("scenario", nargs="?", help="scenario TOML file (default: the embedded default scenario)")
     run.add_argument("--out", type=Path, default=DEFAULT_OUT, help="results folder (default: results/)")
     run.add_argument("--force", action="store_true", help="redo a run whose identical scenario is already stored")

@@ -71,9 +71,9 @@ ENTRY_PALETTE = (
     "#6e6e6e",
 )
 THEORY_DASHES = (4.0, 1.6)
-# Largest |z| of the test error over time for which a run counts as agreeing with its theory:
-# the comparison module's limit, so figures, page and tables give one verdict.
-AGREEMENT_MAX_Z = comparison.AGREEMENT_Z
+# Marker of a sweep point by its run's verdict (harness.judgement), so the figure shows the
+# verdict the tables give: filled agree, open inconclusive, a cross disagree.
+VERDICT_MARKERS = {"agree": ("o", True), "inconclusive": ("o", False), "disagree": ("X", True), "n/a": ("s", False)}
 # Sequential map for heat maps: pale sand to deep blue, monotone in lightness.
 HEAT_MAP = LinearSegmentedColormap.from_list("harness_heat", ["#f7f1e1", "#e9c46a", "#d9731a", "#8a3b5c", "#1d3557"])
 MISSING_CELL = "#d8d8d8"
@@ -145,7 +145,8 @@ RUN_FIGURES = ("learning_curve", "order_parameters")
 FORMATS = ("png", "pdf")
 SWEEP_METRICS = {
     "final_test_error": ("final_test_error", r"final $\varepsilon_g$ (simulation)"),
-    "max_abs_z": ("test_error.max_abs_z", r"max $|z|$ of $\varepsilon_g$"),
+    "max_abs_z": ("test_error.max_abs_z", r"max $|z|$ of $\varepsilon_g$ (detectability)"),
+    "band_reach": ("test_error.band_reach", r"band of $\varepsilon_g$ reaches (× margin)"),
     "final_rel_err": ("test_error.final_rel_err", r"final relative error of $\varepsilon_g$"),
     "divergence_t": ("test_error.divergence_t", r"divergence time $t$"),
 }
@@ -334,15 +335,18 @@ def plot_learning_curve(
     seeds_shown: int = 8,
     show_overlap: bool | None = None,
     divergence_t: float | None = None,
+    verdict: str | None = None,
     size: FigureSize = FigureSize(),
 ) -> Figure:
-    """Test error against t (log axis) with SEM band and theory, and z against t below it.
+    """Test error against t (log axis) with SEM band and theory; below it, the verdict's residuals.
 
     ``trajectories`` (rows of test_error per seed) adds thin per-seed simulation curves,
     each with its own paired theory in the same hue, for at most ``seeds_shown`` seeds.
     ``show_overlap`` None draws overlap_error only when it differs from test_error.
-    ``divergence_t`` (the run's divergence time from metrics.parquet: from there on |z| stays
-    large) is marked by a vertical line in the residual panel.
+    The lower panel shows theory - simulation divided by the agreement margin with its
+    simultaneous band (harness.judgement); ``verdict`` (the test_error group's) titles it.
+    ``divergence_t`` (metrics.parquet: the first time the band lies wholly outside the
+    margin) is marked by a vertical line in the residual panel.
     Non-finite values (a diverged seed can make a mean infinite) are left out of the lines.
     """
     test = _observable(summary, "test_error")
@@ -400,42 +404,58 @@ def plot_learning_curve(
         # With per-seed curves a second legend sits upper right; a falling curve leaves lower left free.
         curve_ax.legend(loc="lower left" if trajectories is not None else "best")
 
-        residual_ax.axhspan(-2.0, 2.0, color=BAND_GREY, linewidth=0, zorder=0)
-        residual_ax.axhline(0.0, color=MUTED, linewidth=0.5, zorder=1)
-        z = test["z"].to_numpy(dtype=float)
-        finite = np.isfinite(z)
-        residual_ax.plot(t[finite], z[finite], color=SIM_COLOR, linewidth=0.9, label=r"$\varepsilon_g$")
-        if overlap is not None and not overlap.empty:
-            oz = overlap["z"].to_numpy(dtype=float)
-            ok = np.isfinite(oz)
-            residual_ax.plot(
-                overlap["t"].to_numpy()[ok],
-                oz[ok],
-                color=OVERLAP_COLOR,
-                linestyle=":",
-                linewidth=1.1,
-            )
-        if divergence_t is not None and np.isfinite(divergence_t) and divergence_t > 0:
-            residual_ax.axvline(divergence_t, color=INK, linewidth=0.6, linestyle=(0, (1, 1.5)))
-            residual_ax.annotate(
-                "departs",
-                xy=(divergence_t, 1.0),
-                xycoords=("data", "axes fraction"),
-                xytext=(2, -2),
-                textcoords="offset points",
-                ha="left",
-                va="top",
-                fontsize=6.5,
-                color=INK,
-            )
-        low, high = residual_ax.get_ylim()
-        bound = max(3.0, abs(low), abs(high))
-        residual_ax.set_ylim(-bound, bound)
+        _draw_residuals(residual_ax, test, overlap, divergence_t, verdict)
         residual_ax.set_xscale("log")
         residual_ax.set_xlabel(T_LABEL)
-        residual_ax.set_ylabel(r"$z$")
         fig.align_ylabels(axes)
     return fig
+
+
+def _draw_residuals(
+    ax: Axes, test: pd.DataFrame, overlap: pd.DataFrame | None, divergence_t: float | None, verdict: str | None
+) -> None:
+    """The verdict's own picture: theory - simulation in units of the margin, with its band.
+
+    Agreement is shown where the band stays inside +-1 at every time, disagreement where it
+    lies wholly outside somewhere (harness.judgement). Runs stored without margin and band
+    columns show z instead.
+    """
+    t = test["t"].to_numpy()
+    judged = "margin" in test and "band" in test and np.any(np.isfinite(test["band"].to_numpy(dtype=float)))
+    ax.axhline(0.0, color=MUTED, linewidth=0.5, zorder=1)
+    if judged:
+        margin = test["margin"].to_numpy(dtype=float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            centre = test["diff_mean"].to_numpy(dtype=float) / margin
+            half = test["band"].to_numpy(dtype=float) / margin
+        ok = np.isfinite(centre) & np.isfinite(half)
+        ax.axhspan(-1.0, 1.0, color=BAND_GREY, linewidth=0, zorder=0, label="margin")
+        ax.fill_between(t[ok], (centre - half)[ok], (centre + half)[ok], color=THEORY_COLOR, alpha=0.25,
+                        linewidth=0, label="simultaneous band")
+        ax.plot(t[ok], centre[ok], color=THEORY_COLOR, linewidth=0.9)
+        ax.set_ylabel("(theory − sim.) / margin")
+        bound = max(1.6, float(np.nanmax(np.abs(np.concatenate([centre[ok] - half[ok], centre[ok] + half[ok]]))))
+                    if ok.any() else 1.6)
+        ax.set_ylim(-min(bound, 8.0) * 1.05, min(bound, 8.0) * 1.05)
+        if verdict:
+            ax.set_title(f"test error: {verdict}", loc="right", fontsize=7, pad=2)
+    else:
+        ax.axhspan(-2.0, 2.0, color=BAND_GREY, linewidth=0, zorder=0)
+        z = test["z"].to_numpy(dtype=float)
+        finite = np.isfinite(z)
+        ax.plot(t[finite], z[finite], color=SIM_COLOR, linewidth=0.9, label=r"$\varepsilon_g$")
+        if overlap is not None and not overlap.empty:
+            oz = overlap["z"].to_numpy(dtype=float)
+            keep = np.isfinite(oz)
+            ax.plot(overlap["t"].to_numpy()[keep], oz[keep], color=OVERLAP_COLOR, linestyle=":", linewidth=1.1)
+        low, high = ax.get_ylim()
+        bound = max(3.0, abs(low), abs(high))
+        ax.set_ylim(-bound, bound)
+        ax.set_ylabel(r"$z$")
+    if divergence_t is not None and np.isfinite(divergence_t) and divergence_t > 0:
+        ax.axvline(divergence_t, color=INK, linewidth=0.6, linestyle=(0, (1, 1.5)))
+        ax.annotate("departs", xy=(divergence_t, 1.0), xycoords=("data", "axes fraction"), xytext=(2, -2),
+                    textcoords="offset points", ha="left", va="top", fontsize=6.5, color=INK)
 
 
 def _finite_or_nan(column: pd.Series) -> np.ndarray:
@@ -677,6 +697,14 @@ def _gap_label(verdict: dict) -> str:
     return f"gap of {symbol}"
 
 
+def _exponent_text(verdict: dict) -> str:
+    """b with its error, or marked as held fixed when too few sizes could fit it."""
+    if not verdict.get("exponent_fitted", True):
+        return f"{float(verdict['exponent']):.2g}" + r"\ \mathrm{(fixed)}"
+    error = verdict.get("exponent_err")
+    return _pm(float(verdict["exponent"]), float("nan") if error is None else float(error))
+
+
 def plot_scaling(verdict: dict, *, size: FigureSize = FigureSize()) -> Figure:
     """Gap against N (log-log) with the fitted law a N^-b + c, the offset band and the verdict."""
     sizes = np.asarray(verdict["sizes"], dtype=float)
@@ -711,7 +739,7 @@ def plot_scaling(verdict: dict, *, size: FigureSize = FigureSize()) -> Figure:
             law[positive],
             color=THEORY_COLOR,
             dashes=THEORY_DASHES,
-            label=rf"$a N^{{-b}} + c$,  $b = {_pm(float(verdict['exponent']), float(verdict['exponent_err']))}$",
+            label=rf"$a N^{{-b}} + c$,  $b = {_exponent_text(verdict)}$",
         )
         ax.relim()
         ax.autoscale_view()
@@ -910,14 +938,9 @@ def _sweep_curves(ax: Axes, groups: list, others: Sequence[str], key: str, colum
                 color=colour,
             )
         ax.plot([], [], linestyle="none", marker="^", markersize=3.5, color=MUTED, label="never departs")
-    if column.endswith("max_abs_z"):
-        ax.axhline(
-            AGREEMENT_MAX_Z,
-            color=MUTED,
-            linewidth=0.6,
-            linestyle=(0, (3, 2)),
-            label=rf"$|z| = {AGREEMENT_MAX_Z:g}$",
-        )
+    marked = any("verdict" in part and part["verdict"].notna().any() for _, part in groups)
+    if marked:
+        _mark_verdicts(ax, groups, key, column)
     if all_values.size > 1 and np.issubdtype(all_values.dtype, np.number):
         low, high = float(all_values.min()), float(all_values.max())
         pad = (high / low) ** 0.05 if ax.get_xscale() == "log" else None
@@ -928,8 +951,26 @@ def _sweep_curves(ax: Axes, groups: list, others: Sequence[str], key: str, colum
             ax.set_xlim(low - margin, high + margin)
     ax.set_xlabel(_key_label(key))
     ax.set_ylabel(label)
-    if others or never_drawn or column.endswith("max_abs_z"):
+    if others or never_drawn or marked:
         ax.legend(loc="best", fontsize=6.5)
+
+
+def _mark_verdicts(ax: Axes, groups: list, key: str, column: str) -> None:
+    """Each point's marker says its run's verdict (filled agree, open inconclusive, cross disagree)."""
+    for index, (_, part) in enumerate(groups):
+        colour = ENTRY_PALETTE[index % len(ENTRY_PALETTE)]
+        for verdict, (marker, filled) in VERDICT_MARKERS.items():
+            rows = part[part["verdict"] == verdict]
+            if rows.empty:
+                continue
+            ax.plot(rows[key].to_numpy(), pd.to_numeric(rows[column], errors="coerce").to_numpy(dtype=float),
+                    linestyle="none", marker=marker, markersize=4.0, color=colour,
+                    markerfacecolor=colour if filled else "white", markeredgewidth=0.9, zorder=3)
+    shown = set().union(*(set(part["verdict"].dropna()) for _, part in groups))
+    for verdict, (marker, filled) in VERDICT_MARKERS.items():
+        if verdict in shown:
+            ax.plot([], [], linestyle="none", marker=marker, markersize=4.0, color=MUTED,
+                    markerfacecolor=MUTED if filled else "white", label=verdict)
 
 
 def _sweep_heat_map(
@@ -1007,6 +1048,8 @@ def write_run_figures(run_dir: Path, options: FigureOptions = FigureOptions()) -
     trajectories = read_trajectories(run_dir, ["test_error"]) if options.per_seed else None
     test_metrics = metrics[metrics["observable"] == "test_error"]
     divergence = float(test_metrics["divergence_t"].iloc[0]) if len(test_metrics) else None
+    verdict = str(test_metrics["group_verdict"].iloc[0]) if "group_verdict" in test_metrics and len(test_metrics) \
+        else None
     out = run_dir / "figures"
     written: list[Path] = []
     try:
@@ -1015,6 +1058,7 @@ def write_run_figures(run_dir: Path, options: FigureOptions = FigureOptions()) -
             trajectories=trajectories,
             seeds_shown=options.seeds_shown,
             divergence_t=divergence,
+            verdict=verdict,
             size=options.size,
         )
     except FigureInputError as error:

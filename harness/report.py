@@ -10,8 +10,8 @@ headers of the overview table link to them. The pages use no scripts, no externa
 sheets or fonts and no network: images are relative links to the PNG files in each
 folder's figures/, each linked to its vector PDF when one exists.
 
-Verdict of a run: "agree" when the largest |z| of the test error over time is at most
-AGREEMENT_MAX_Z, "disagree" otherwise, "no verdict" when it is missing or not finite.
+Verdict of a run: the one harness.judgement reached and judgement.json stores (agree within
+the scenario's margin, disagree, inconclusive, or n/a), shown for the run and per group.
 """
 
 from __future__ import annotations
@@ -32,9 +32,11 @@ import numpy as np
 import pandas as pd
 
 from harness import figures
+from harness.comparison import describe_gaps
+from harness.pipeline import read_judgement
 from harness.results_store import atomic_write_text
 
-AGREEMENT_MAX_Z = figures.AGREEMENT_MAX_Z
+VERDICTS = ("agree", "disagree", "inconclusive", "n/a")
 OVERVIEW_KEYS = 6
 SWEEP_PAGE_METRICS = ("final_test_error", "max_abs_z", "divergence_t")
 SWEEP_CAPTIONS = {
@@ -78,6 +80,7 @@ class RunEntry:
     manifest: dict
     metrics: pd.DataFrame
     final_test_error: float
+    judgement: dict | None = None
     figure_files: dict[str, Path] = field(default_factory=dict)
     figure_note: str | None = None
 
@@ -87,12 +90,7 @@ class RunEntry:
 
     @property
     def verdict(self) -> str:
-        # the adjusted z accounts for the few seeds behind each SEM (harness.comparison)
-        column = "max_abs_z_adjusted" if "max_abs_z_adjusted" in self.metrics else "max_abs_z"
-        max_z = self.test_metric(column)
-        if not math.isfinite(max_z):
-            return "no verdict"
-        return "agree" if max_z <= AGREEMENT_MAX_Z else "disagree"
+        return str(self.judgement["verdict"]) if self.judgement else "n/a"
 
 
 @dataclass
@@ -189,6 +187,7 @@ def read_run(path: Path) -> RunEntry:
         manifest=manifest,
         metrics=metrics,
         final_test_error=final,
+        judgement=read_judgement(path),
     )
 
 
@@ -337,7 +336,7 @@ def ordered(runs: Sequence[RunEntry], sort: SortKey, descending: bool) -> list[R
 STYLE = """
 :root { --ink:#1f1f1f; --muted:#6b6b6b; --rule:#dcdcdc; --sim:#1d5a85; --theory:#d9731a;
         --agree:#2f6b35; --agree-bg:#e3f0e1; --disagree:#9b2c2c; --disagree-bg:#f6e0dc;
-        --none:#555; --none-bg:#ececec; }
+        --none:#555; --none-bg:#ececec; --open:#7a5a00; --open-bg:#f7edcf; }
 * { box-sizing: border-box; }
 body { margin: 0 auto; max-width: 1180px; padding: 18px 22px 60px; color: var(--ink);
        font: 14px/1.45 "DejaVu Sans", "Helvetica Neue", Arial, sans-serif; background: #fff; }
@@ -368,7 +367,8 @@ tbody tr:hover { background: #f6f6f6; }
          font-family: "DejaVu Sans", Arial, sans-serif; white-space: nowrap; }
 .badge.agree, .badge.consistent { color: var(--agree); background: var(--agree-bg); }
 .badge.disagree, .badge.inconsistent { color: var(--disagree); background: var(--disagree-bg); }
-.badge.none, .badge.inconclusive { color: var(--none); background: var(--none-bg); }
+.badge.none { color: var(--none); background: var(--none-bg); }
+.badge.inconclusive { color: var(--open); background: var(--open-bg); }
 article { border-top: 1px solid var(--rule); padding: 16px 0 10px; }
 .scenario { color: var(--muted); margin: 0 0 8px; font-size: 13px; }
 .scenario b { color: var(--ink); font-weight: 600; }
@@ -421,6 +421,7 @@ def _badge(verdict: str) -> str:
     css = {
         "agree": "agree",
         "disagree": "disagree",
+        "inconclusive": "inconclusive",
         "consistent": "consistent",
         "inconsistent": "inconsistent",
     }.get(verdict, "none")
@@ -546,7 +547,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
 <article id="{_anchor("run", run.run_id)}" class="run">
 <h3>{_e(run.run_id)} {_badge(run.verdict)}</h3>
 <p class="scenario">{scenario_line}</p>
-{diverged_note}{figure_block}{note}
+{diverged_note}{_verdict_html(run.judgement)}{figure_block}{note}
 {_metrics_table(run.metrics, main_names)}
 {_details(f"metrics of every order parameter ({len(other_names)})", others) if others else ""}
 <div class="columns">
@@ -555,6 +556,41 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
 </div>
 <p class="scenario">folder: <a href="{folder}/">{_e(os.path.relpath(run.path, root))}/</a></p>
 </article>"""
+
+
+VERDICT_HEADERS = (
+    ("worst_ratio", "largest |diff| / margin"),
+    ("reach", "band reaches (× margin)"),
+    ("detected_t", "difference detectable from t"),
+    ("departs_t", "shown beyond margin from t"),
+    ("seeds_needed", "seeds to settle"),
+)
+
+
+def _verdict_html(judgement: dict | None) -> str:
+    """The run's verdict per observable group (judgement.json), its settings and its gaps."""
+    if not judgement:
+        return ""
+    rows = []
+    for group in judgement["groups"]:
+        cells = "".join(f"<td>{_e(_fmt(group.get(key)))}</td>" for key, _ in VERDICT_HEADERS)
+        rows.append(f'<tr><td class="text">{_e(group["group"])}</td><td class="text">{_badge(group["verdict"])}</td>'
+                    f"{cells}</tr>")
+    head = '<th class="text">group</th><th class="text">verdict</th>' + "".join(
+        f"<th>{_e(label)}</th>" for _, label in VERDICT_HEADERS)
+    settings = (
+        f"margin {_fmt(judgement['margin'])} × an error's value at each time (at least {_fmt(judgement['floor'])} × "
+        f"its largest) and × an order-parameter group's largest size; "
+        f"{_fmt(100 * (1 - judgement['alpha']))} % simultaneous band, c = {_fmt(judgement['band_factor'])} "
+        f"({_e(judgement['band_method'])})"
+    )
+    if judgement["verdict"] == "inconclusive":
+        needed = judgement.get("seeds_needed")
+        settings += "; " + ("no number of seeds would settle it at this margin" if needed is None
+                            else f"about {int(needed)} seeds would settle it")
+    gaps = "".join(f"<li>{_e(line)}</li>" for line in describe_gaps(judgement.get("gaps") or {}))
+    return (f'<div class="verdict">{_table(head, rows)}<p class="scenario">{_e(settings)}</p>'
+            + (f'<ul class="scenario">{gaps}</ul>' if gaps else "") + "</div>")
 
 
 def _short_keys(keys: Sequence[str]) -> dict[str, str]:
@@ -679,9 +715,7 @@ def render_page(results: ResultsFolder, sort: SortKey, descending: bool, generat
     root = results.root
     runs = ordered(results.runs, sort, descending)
     varying = varying_keys(results.runs)
-    counts = {
-        verdict: sum(run.verdict == verdict for run in results.runs) for verdict in ("agree", "disagree", "no verdict")
-    }
+    counts = {verdict: sum(run.verdict == verdict for run in results.runs) for verdict in VERDICTS}
     order_words = f"{re.sub('<[^>]+>', '', sort.label_html)}, {'descending' if descending else 'ascending'}"
     sort_links = []
     for key in SORT_KEYS:
@@ -698,7 +732,7 @@ def render_page(results: ResultsFolder, sort: SortKey, descending: bool, generat
         else '<p class="empty">No run folders in this folder.</p>'
     )
     title = f"Results: {root.resolve().name}"
-    no_verdict = f", {counts['no verdict']} without verdict" if counts["no verdict"] else ""
+    tally = ", ".join(f"{counts[v]} {v}" for v in VERDICTS if counts[v] or v != "n/a")
     run_ids = {run.run_id for run in results.runs}
     skipped = (
         '<section id="skipped"><h2>Skipped</h2><ul class="note">'
@@ -718,8 +752,9 @@ def render_page(results: ResultsFolder, sort: SortKey, descending: bool, generat
 <body>
 <header>
 <h1>{_e(title)}</h1>
-<p class="lede">{len(results.runs)} run(s): {counts["agree"]} agree, {counts["disagree"]} disagree{no_verdict}
-(agreement: max |z| of the test error ≤ {AGREEMENT_MAX_Z:g}) ·
+<p class="lede">{len(results.runs)} run(s): {tally}
+(agree: the simultaneous band of theory − simulation lies within each run's margin at every time;
+disagree: wholly outside it at some time; inconclusive: neither is shown) ·
 {len(results.scalings)} finite-size-scaling result(s) · {len(results.sweeps)} sweep(s).
 Runs ordered by {_e(order_words)}; runs without a value come last.</p>
 <nav>Sort runs by: {" ".join(sort_links)}</nav>

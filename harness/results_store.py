@@ -145,9 +145,14 @@ def write_run_folder(
     trajectories: pd.DataFrame,
     summary: pd.DataFrame,
     metrics: pd.DataFrame,
+    judgement: dict[str, Any] | None = None,
     replace: bool = False,
 ) -> Path:
-    """Write the five files of a run and publish the folder ``out_dir/name`` atomically."""
+    """Write the files of a run and publish the folder ``out_dir/name`` atomically.
+
+    ``judgement.json`` (the verdict, harness.judgement) is derived from the trajectories and
+    can be rewritten later, so it is not one of the :data:`RUN_FILES` that make a run complete.
+    """
     final = Path(out_dir) / name
     with staging_folder(out_dir, name) as staging:
         atomic_write_text(staging / "scenario.toml", scenario_toml)
@@ -155,6 +160,8 @@ def write_run_folder(
         atomic_write_parquet(staging / "summary.parquet", summary)
         atomic_write_parquet(staging / "metrics.parquet", metrics)
         atomic_write_json(staging / "manifest.json", manifest)
+        if judgement is not None:
+            atomic_write_json(staging / "judgement.json", judgement)
         publish_folder(staging, final, replace=replace)
     return final
 

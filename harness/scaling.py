@@ -81,13 +81,40 @@ convention of the Particle Data Group. The jackknife errors from a handful of se
 themselves noisy (their spread across sizes is what makes chi^2 large by chance), and this
 keeps the intervals honest instead of declaring the law wrong.
 
+Three sizes
+-----------
+Three points cannot fit three parameters (a fit through every point has chi^2 = 0 and an
+exponent error of hundreds). With fewer than four sizes b is not fitted: for each b on a
+grid over [b_min, 3] the two-parameter law is fitted (one degree of freedom) and each
+claim takes the least favourable b: the smallest offset significance for "inconsistent",
+the largest upper limit for "consistent". The exponent printed is the best-fitting grid
+value, marked as held fixed.
+
+The paired shrink test
+----------------------
+Whatever the number of sizes, the same seeds see the same random keys at every size
+(common random numbers), so their gaps at different sizes are correlated, and the ratio
+rho = U(N_max) / U(N_min) of the squared gaps of the *same* seeds is far more precise than
+either gap. Its error comes from the delete-one-seed jackknife with the seed removed at both
+sizes at once (Efron & Stein 1981). A gap that vanishes like N^-b with b >= b_min has
+rho <= (N_min / N_max)^(2 b_min) (1/4 over a factor 4 in N at b_min = 1/2). When the gap is
+clearly there at the largest size (U / sigma_U >= 3) and rho exceeds that bound by three
+jackknife errors, the gap does not shrink as a finite-size gap must: ``inconsistent``,
+whatever the fit says (a flat gap with large per-size errors can fit an offset compatible
+with zero). Two errors above the bound already forbid ``consistent``.
+
 The verdict
 -----------
+The three outcomes are those of harness.judgement, said of the limit N -> infinity, and
+the exit status is shared with it: consistent (agree) 0, inconsistent (disagree) 1,
+inconclusive 3.
+
 tolerance tau = resolution * (rms over t of the theory's mean curve at the largest size);
 ``--resolution`` (default 0.05) is the smallest asymptotic offset worth detecting, relative
 to the observable's own size.
 
-* ``inconsistent``: z0 >= 3, the offset is significantly above zero;
+* ``inconsistent``: z0 >= 3, the offset is significantly above zero, or the paired shrink
+  test finds the gap flat;
 * ``consistent``: z0 < 2 (offset compatible with 0), offset_upper <= tau (any offset left is
   below the tolerance: the measurement resolves it), and the gap does not rise with N (the
   squared gap at the largest size is not 2 sigma above the smallest). "Falling" is asked in
@@ -119,6 +146,8 @@ from typing import Any, NamedTuple
 import numpy as np
 
 from harness.errors import InputError
+from harness.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED
+from harness.judgement import EXIT_STATUS as VERDICT_EXIT_STATUS
 
 DEFAULT_OBSERVABLE = "test_error"
 DEFAULT_RESOLUTION = 0.05
@@ -135,8 +164,13 @@ MIN_SEEDS = 3
 MIN_SIZES = 3
 FORECAST_SIZE_FACTORS = (2, 4)
 EXPONENT_GRID_POINTS = 251
+FIXED_EXPONENT_GRID_POINTS = 26
+MIN_SIZES_FOR_EXPONENT = 4
+"""With fewer sizes the exponent b is not fitted (three parameters need at least one spare point)."""
 
-EXIT_STATUS = {"consistent": 0, "inconsistent": 1, "inconclusive": 3}
+SCALE_OUTCOMES = {"consistent": AGREE, "inconsistent": DISAGREE, "inconclusive": INCONCLUSIVE}
+"""The three scaling outcomes are the verdict's three (harness.judgement), said of the limit N -> infinity."""
+EXIT_STATUS = {name: VERDICT_EXIT_STATUS[outcome] for name, outcome in SCALE_OUTCOMES.items()}
 
 
 # --------------------------------------------------------------------------- the gap
@@ -179,6 +213,14 @@ def squared_gap(diff: np.ndarray) -> tuple[float, float]:
 
     U = 1/(S(S-1)) sum_{s != s'} <d_s, d_s'> with <f, g> the mean over the E times.
     """
+    u, leave_one_out = squared_gap_and_leave_one_out(diff)
+    s = len(leave_one_out)
+    jackknife_var = (s - 1) / s * np.sum((leave_one_out - leave_one_out.mean()) ** 2)
+    return float(u), float(np.sqrt(jackknife_var))
+
+
+def squared_gap_and_leave_one_out(diff: np.ndarray) -> tuple[float, np.ndarray]:
+    """U and its delete-one-seed values U_(-s) [S], the ingredients of every jackknife here."""
     diff = np.asarray(diff, dtype=np.float64)
     s, e = diff.shape
     if s < MIN_SEEDS:
@@ -188,18 +230,23 @@ def squared_gap(diff: np.ndarray) -> tuple[float, float]:
     u = off_diagonal / (s * (s - 1))
     # Delete-one-seed values: remove row and column s from the off-diagonal sum.
     row = inner.sum(axis=1) - np.diag(inner)
-    leave_one_out = (off_diagonal - 2.0 * row) / ((s - 1) * (s - 2))
-    jackknife_var = (s - 1) / s * np.sum((leave_one_out - leave_one_out.mean()) ** 2)
-    return float(u), float(np.sqrt(jackknife_var))
+    return float(u), (off_diagonal - 2.0 * row) / ((s - 1) * (s - 2))
+
+
+def finite_differences(traj: Any, observable: str, t_min: float) -> tuple[np.ndarray, np.ndarray]:
+    """(seed indices, theory - simulation [S, E]) at times t >= t_min > 0, seeds finite throughout."""
+    column = traj.column(observable)
+    times = (traj.t >= t_min) & (traj.t > 0)
+    diff = traj.theory[:, times, column] - traj.sim[:, times, column]
+    finite = np.all(np.isfinite(diff), axis=1)  # diverged seeds (NaN from then on) leave the gap
+    return np.asarray(traj.seeds)[finite], diff[finite]
 
 
 def gap_of_trajectories(traj: Any, size: int, observable: str, t_min: float) -> SizeGap:
     """The gap of one run's :class:`~harness.trajectories.Trajectories` at times t >= t_min > 0."""
     column = traj.column(observable)
     times = (traj.t >= t_min) & (traj.t > 0)
-    diff = traj.theory[:, times, column] - traj.sim[:, times, column]
-    finite = np.all(np.isfinite(diff), axis=1)  # diverged seeds (NaN from then on) leave the gap
-    diff = diff[finite]
+    _, diff = finite_differences(traj, observable, t_min)
     if len(diff) < MIN_SEEDS:
         raise InputError(
             f"scale: at data.input_dim = {size} only {len(diff)} seed(s) have a finite {observable} "
@@ -240,6 +287,7 @@ class ScalingFit(NamedTuple):
     p_value: float  # NaN when dof = 0
     scale_factor: float  # sqrt(chi^2 / dof) when above 1: every error above is inflated by it
     exponent_bounds: tuple[float, float]
+    exponent_fitted: bool = True  # False with three sizes: b is the best of a grid, held fixed, not fitted
 
 
 def _gap_model(sizes: np.ndarray, a: float, b: float, c: float) -> np.ndarray:
@@ -295,9 +343,11 @@ class _Profile:
     """
 
     def __init__(
-        self, sizes: np.ndarray, u: np.ndarray, u_err: np.ndarray, exponent_bounds: tuple[float, float]
+        self, sizes: np.ndarray, u: np.ndarray, u_err: np.ndarray, exponent_bounds: tuple[float, float],
+        exponents: np.ndarray | None = None,
     ):
-        self.exponents = np.linspace(*exponent_bounds, EXPONENT_GRID_POINTS)
+        self.exponents = np.linspace(*exponent_bounds, EXPONENT_GRID_POINTS) if exponents is None \
+            else np.asarray(exponents, dtype=np.float64)
         self.sizes = np.asarray(sizes, dtype=np.float64)
         self.reference = float(np.exp(np.mean(np.log(self.sizes))))
         self.u = np.asarray(u, dtype=np.float64)
@@ -374,6 +424,8 @@ def fit_scaling(
     u_err = np.asarray(squared_gap_errs, dtype=np.float64)
     if np.any(~np.isfinite(u_err)) or np.any(u_err <= 0):
         raise ValueError("squared-gap errors must be finite and positive")
+    if len(sizes) < MIN_SIZES_FOR_EXPONENT:
+        return _fit_without_exponent(sizes, u, u_err, exponent_bounds)
     profile = _Profile(sizes, u, u_err, exponent_bounds)
     chi2_min, amplitude, exponent, offset = profile.minimum()
 
@@ -435,6 +487,104 @@ def fit_scaling(
     )
 
 
+def _fit_without_exponent(
+    sizes: np.ndarray, u: np.ndarray, u_err: np.ndarray, exponent_bounds: tuple[float, float]
+) -> ScalingFit:
+    """Three sizes cannot fix three parameters: the offset is bounded for every fixed exponent.
+
+    For each b on a grid over ``exponent_bounds`` the two-parameter law a N^-b + c is fitted
+    (one degree of freedom). The verdict then uses the least favourable b for each claim: the
+    smallest offset significance (for "inconsistent") and the largest two-sigma upper limit
+    (for "consistent"). The exponent and amplitude reported are those of the best-fitting
+    fixed b, marked as not fitted (no error).
+    """
+    from scipy.special import chdtrc
+
+    dof = len(sizes) - 2
+    best: tuple | None = None
+    significance, upper = math.inf, 0.0
+    for b in np.linspace(*exponent_bounds, FIXED_EXPONENT_GRID_POINTS):
+        profile = _Profile(sizes, u, u_err, exponent_bounds, exponents=np.array([b]))
+        chi2_min, amplitude, _, offset = profile.minimum()
+        scale_factor = math.sqrt(max(1.0, chi2_min / dof)) if dof > 0 else 1.0
+        significance = min(significance, math.sqrt(max(profile.chi2(0.0) - chi2_min, 0.0)) / scale_factor)
+        upper = max(upper, profile.crossing(chi2_min + UPPER_LIMIT_CHI2 * scale_factor**2, offset, upward=True))
+        if best is None or chi2_min < best[0]:
+            low = profile.crossing(chi2_min + scale_factor**2, offset, upward=False)
+            high = profile.crossing(chi2_min + scale_factor**2, offset, upward=True)
+            p_value = float(chdtrc(dof, chi2_min)) if dof > 0 else math.nan
+            best = (chi2_min, offset, (low, high), scale_factor, p_value, amplitude * profile.reference**b, b)
+    chi2_min, offset, interval, scale_factor, p_value, amplitude, exponent = best
+    nan = float("nan")
+    return ScalingFit(
+        amplitude=float(amplitude), amplitude_err=nan, exponent=float(exponent), exponent_err=nan,
+        offset=float(offset), offset_err=float(interval[1] - offset), offset_interval=interval,
+        offset_upper=float(upper), offset_significance=float(significance), chi2=float(chi2_min), dof=dof,
+        p_value=p_value, scale_factor=scale_factor, exponent_bounds=tuple(exponent_bounds), exponent_fitted=False,
+    )
+
+
+# ----------------------------------------------------------------- the paired shrink test
+
+
+class ShrinkTest(NamedTuple):
+    """Does the gap fall between the smallest and the largest size as a finite-size gap must?"""
+
+    small: int  # the smallest N
+    large: int  # the largest N
+    ratio: float  # U(large) / U(small), the squared gaps of the same seeds
+    ratio_err: float  # delete-one-seed jackknife, the seed deleted at both sizes at once
+    bound: float  # (small / large)^(2 b_min): the largest ratio a finite-size gap allows
+    excess: float  # (ratio - bound) / ratio_err
+    large_significance: float  # U(large) / its jackknife error: is the gap there at all?
+    seeds: int
+
+    @property
+    def flat(self) -> bool:
+        """The gap is clearly there at the largest size and clearly falls slower than allowed."""
+        return self.large_significance >= Z_INCONSISTENT and self.excess >= Z_INCONSISTENT
+
+
+def shrink_test(small: tuple[int, np.ndarray], large: tuple[int, np.ndarray], min_exponent: float) -> ShrinkTest:
+    """The paired test of the module docstring on differences [S, E] of the same S seeds at two sizes.
+
+    Seed s sees the same random keys at every size (common random numbers), so its gaps at
+    two sizes are correlated; deleting the seed from both at once lets the jackknife
+    (Efron & Stein 1981) carry that correlation, which makes the ratio far more precise
+    than either gap alone.
+    """
+    (n_small, d_small), (n_large, d_large) = small, large
+    u_small, loo_small = squared_gap_and_leave_one_out(d_small)
+    u_large, loo_large = squared_gap_and_leave_one_out(d_large)
+    s = len(loo_small)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = u_large / u_small
+        loo_ratio = loo_large / loo_small
+    ratio_err = math.sqrt((s - 1) / s * float(np.sum((loo_ratio - loo_ratio.mean()) ** 2)))
+    large_err = math.sqrt((s - 1) / s * float(np.sum((loo_large - loo_large.mean()) ** 2)))
+    bound = (n_small / n_large) ** (2.0 * min_exponent)
+    finite = u_small > 0 and math.isfinite(ratio) and ratio_err > 0
+    return ShrinkTest(
+        small=int(n_small), large=int(n_large), ratio=float(ratio), ratio_err=ratio_err, bound=float(bound),
+        excess=float((ratio - bound) / ratio_err) if finite else math.nan,
+        large_significance=float(u_large / large_err) if large_err > 0 else math.nan, seeds=s,
+    )
+
+
+def paired_shrink_test(
+    small: Any, large: Any, n_small: int, n_large: int, observable: str, t_min: float, min_exponent: float
+) -> ShrinkTest | None:
+    """:func:`shrink_test` on the seeds finite at both sizes (None when fewer than MIN_SEEDS are)."""
+    seeds_small, d_small = finite_differences(small, observable, t_min)
+    seeds_large, d_large = finite_differences(large, observable, t_min)
+    common = np.intersect1d(seeds_small, seeds_large)
+    if len(common) < MIN_SEEDS:
+        return None
+    pick_small = np.searchsorted(seeds_small, common)
+    pick_large = np.searchsorted(seeds_large, common)
+    return shrink_test((n_small, d_small[pick_small]), (n_large, d_large[pick_large]), min_exponent)
+
+
 # ----------------------------------------------------------------------- the verdict
 
 
@@ -470,7 +620,7 @@ def _seed_factor(chi2_zero: float, chi2_tolerance: float, fit: ScalingFit, toler
 
 
 def decide(
-    gaps: Sequence[SizeGap], fit: ScalingFit, tolerance: float, *, seeds: int
+    gaps: Sequence[SizeGap], fit: ScalingFit, tolerance: float, *, seeds: int, shrink: ShrinkTest | None = None
 ) -> Verdict:
     """Apply the verdict rule of the module docstring and forecast what would settle it."""
     sizes = np.array([g.size for g in gaps], dtype=np.float64)
@@ -483,6 +633,16 @@ def decide(
     law_fits = not (fit.dof > 0 and fit.p_value < MIN_FIT_P_VALUE)  # reported; errors already inflated
     z0 = fit.offset_significance
 
+    if shrink is not None and shrink.flat:
+        return Verdict(
+            "inconsistent",
+            f"the gap does not shrink as a finite-size gap must: the squared gap of the same {shrink.seeds} seeds "
+            f"goes from N = {shrink.small} to N = {shrink.large} by a factor {shrink.ratio:.3g} +- "
+            f"{shrink.ratio_err:.2g}, while a gap falling at least like N^-{fit.exponent_bounds[0]:g} allows at "
+            f"most {shrink.bound:.3g} ({shrink.excess:.1f} sigma above), and it is {shrink.large_significance:.1f} "
+            f"sigma above zero at N = {shrink.large}",
+            [], {},
+        )
     if z0 >= Z_INCONSISTENT:
         return Verdict(
             "inconsistent",
@@ -490,7 +650,8 @@ def decide(
             "the gap does not vanish as N grows",
             [], {},
         )
-    if z0 < Z_COMPATIBLE and fit.offset_upper <= tolerance and not rising:
+    suspicious = shrink is not None and shrink.excess >= Z_COMPATIBLE and shrink.large_significance >= Z_COMPATIBLE
+    if z0 < Z_COMPATIBLE and fit.offset_upper <= tolerance and not rising and not suspicious:
         if -rise > 2.0 * rise_err:
             trend = (
                 f"the gap falls from {math.sqrt(max(u[first], 0)):.3g} at N = {int(sizes[first])} "
@@ -516,6 +677,12 @@ def decide(
         reasons.append(
             f"offset compatible with zero but only bounded by {fit.offset_upper:.3g} (two sigma), "
             f"above the tolerance {tolerance:.3g}"
+        )
+    if suspicious:
+        reasons.append(
+            f"the squared gap of the same seeds falls from N = {shrink.small} to N = {shrink.large} only by a "
+            f"factor {shrink.ratio:.3g} +- {shrink.ratio_err:.2g} ({shrink.excess:.1f} sigma above the "
+            f"{shrink.bound:.3g} a finite-size gap allows)"
         )
     if rising:
         reasons.append(
@@ -655,7 +822,7 @@ def run_scaling(
     identifier = scale_id(scenario, sizes, observable, resolution, min_exponent)
     out_dir = Path(out_dir)
 
-    trajectories, run_ids = [], []
+    trajectories, run_ids, run_verdicts = [], [], []
     for index, (size, size_scenario) in enumerate(zip(sizes, per_size, strict=True), start=1):
         log.write(f"scale: size {index}/{len(sizes)}, N = {size}\n")
         log.flush()
@@ -669,6 +836,7 @@ def run_scaling(
         state = "reused" if stored.skipped else "done"
         log.write(f"scale: N = {size}: run {stored.run_id} {state}\n")
         run_ids.append(stored.run_id)
+        run_verdicts.append(stored.judgement["verdict"] if stored.judgement else NOT_JUDGED)
         frame = pd.read_parquet(stored.folder / "trajectories.parquet")
         paired = bool(json.loads((stored.folder / "manifest.json").read_text()).get("paired", True))
         trajectories.append(from_frame(frame, paired=paired))
@@ -688,7 +856,9 @@ def run_scaling(
     )
     tolerance = resolution * gaps[-1].scale
     seeds = min(g.seeds_used for g in gaps)
-    decision = decide(gaps, fit, tolerance, seeds=seeds)
+    shrink = paired_shrink_test(trajectories[0], trajectories[-1], sizes[0], sizes[-1], observable, t_min,
+                                min_exponent)
+    decision = decide(gaps, fit, tolerance, seeds=seeds, shrink=shrink)
 
     verdict = {
         "verdict": decision.verdict,
@@ -725,6 +895,9 @@ def run_scaling(
         "t_min": t_min,
         "run_ids": run_ids,
         "forecast": decision.forecast,
+        "exponent_fitted": fit.exponent_fitted,
+        "shrink": None if shrink is None else {**shrink._asdict(), "flat": shrink.flat},
+        "run_verdicts": run_verdicts,
         "scale_id": identifier,
         "scenario": scenario,
     }
@@ -752,26 +925,39 @@ def format_verdict(verdict: dict[str, Any]) -> str:
     lines = [f"finite-size scaling of {verdict['observable']} -> {verdict['scale_id']}"]
     lines.append(
         f"  {'N':>7}  {'gap':>10}  {'-err':>8}  {'+err':>8}  {'squared gap U':>14}  {'+-':>8}  "
-        f"{'biased gap':>10}  {'noise floor':>11}  seeds"
+        f"{'biased gap':>10}  {'noise floor':>11}  seeds  run verdict"
     )
-    for n, g, low, high, u, u_err, naive, floor, s in zip(
+    run_verdicts = verdict.get("run_verdicts") or [""] * len(verdict["sizes"])
+    for n, g, low, high, u, u_err, naive, floor, s, run_verdict in zip(
         verdict["sizes"], verdict["gaps"], verdict["gap_errs_low"], verdict["gap_errs_high"],
         verdict["squared_gaps"], verdict["squared_gap_errs"], verdict["naive_gaps"],
-        verdict["noise_floors"], verdict["seeds_used"], strict=True,
+        verdict["noise_floors"], verdict["seeds_used"], run_verdicts, strict=True,
     ):
         lines.append(
             f"  {n:>7}  {g:>10.4g}  {low:>8.2g}  {high:>8.2g}  {u:>14.3g}  {u_err:>8.2g}  "
-            f"{naive:>10.4g}  {floor:>11.4g}  {s}"
+            f"{naive:>10.4g}  {floor:>11.4g}  {s:>5}  {run_verdict}"
         )
     exponent_err = verdict["exponent_err"]
     b_text = f"{verdict['exponent']:.2f}"
-    b_text += f" +- {exponent_err:.2f}" if math.isfinite(exponent_err) else " (error undetermined)"
+    if not verdict.get("exponent_fitted", True):
+        b_text += f" (held fixed: {len(verdict['sizes'])} sizes cannot fit it; the offset is bounded for every b)"
+    elif exponent_err is not None and math.isfinite(exponent_err):
+        b_text += f" +- {exponent_err:.2f}"
+    else:
+        b_text += " (error undetermined)"
     lines.append(
         f"  fit a N^-b + c: a = {verdict['amplitude']:.3g}, b = {b_text}, "
         f"c = {verdict['offset']:.3g} +{verdict['offset_err']:.2g} "
         f"(z = {verdict['offset_significance']:.1f}, c < {verdict['offset_upper']:.3g} at 2 sigma, "
         f"tolerance {verdict['tolerance']:.3g}), chi^2 = {verdict['chi2']:.2f} / {verdict['dof']} dof"
     )
+    shrink = verdict.get("shrink")
+    if shrink:
+        lines.append(
+            f"  paired shrink test: U(N = {shrink['large']}) / U(N = {shrink['small']}) = {shrink['ratio']:.3g} "
+            f"+- {shrink['ratio_err']:.2g} over the same {shrink['seeds']} seeds; a finite-size gap allows at most "
+            f"{shrink['bound']:.3g}"
+        )
     lines.append(f"verdict: {verdict['verdict']}: {verdict['reason']}")
     for item in verdict["advice"]:
         lines.append(f"  to settle it: {item}")

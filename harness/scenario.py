@@ -82,6 +82,10 @@ def _unit_interval(value: float) -> str | None:
     return None if 0.0 <= value < 1.0 else "a number in [0, 1)"
 
 
+def _open_half_interval(value: float) -> str | None:
+    return None if 0.0 < value < 0.5 else "a number in (0, 0.5)"
+
+
 def _positive_list(values: list[int]) -> str | None:
     return None if all(v >= 1 for v in values) else "a list of integers >= 1"
 
@@ -190,7 +194,20 @@ SCHEMA: dict[str, dict[str, Key]] = {
                      _one_of("finite", "infinite")),
         "bins": Key("int", 200, "eigenvalue bins of the thermodynamic-limit latent theory", _at_least_two),
     },
+    # How a verdict is reached (harness.judgement); judging changes no computation, so these
+    # keys are not part of the run_id and a stored run is re-judged when they change.
+    "agreement": {
+        "margin": Key("float", 0.05, "how close is close enough: fraction of an error's value at each time, "
+                      "and of an order-parameter group's largest size", _positive_finite),
+        "floor": Key("float", 0.001, "an error curve's margin never falls below this fraction of its largest value",
+                     _nonnegative_finite),
+        "alpha": Key("float", 0.05, "error rate of the verdict, joint over every time and observable",
+                     _open_half_interval),
+    },
 }
+
+JUDGING_SECTIONS: tuple[str, ...] = ("agreement",)
+"""Sections that say how to judge a run, not what to compute: left out of its run_id."""
 
 
 def _check_user_sources(s: Scenario) -> None:
@@ -430,8 +447,13 @@ def default_scenario() -> Scenario:
 
 
 def run_id(scenario: Scenario) -> str:
-    """A short hash of the resolved scenario: identical scenarios share a run_id."""
-    canonical = json.dumps(scenario, sort_keys=True, separators=(",", ":"))
+    """A short hash of what the resolved scenario computes: identical computations share a run_id.
+
+    The judging sections (:data:`JUDGING_SECTIONS`) are left out: a different margin judges
+    the same stored trajectories again instead of recomputing them.
+    """
+    computed = {section: values for section, values in scenario.items() if section not in JUDGING_SECTIONS}
+    canonical = json.dumps(computed, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(canonical.encode("utf-8")).hexdigest()[:12]
 
 

@@ -154,6 +154,11 @@ def parse_sweep_table(table: Any, source: str = "sweep file") -> tuple[str, dict
                     f"sweep key '{dotted}' in '{source}' is not a scenario key; "
                     "expected 'section.key' such as 'sgd.learning_rate', or 'mode'"
                 )
+            if section in scenario_lib.JUDGING_SECTIONS:
+                raise SweepError(
+                    f"sweep key '{dotted}' in '{source}': [{section}] says how runs are judged and changes no "
+                    "computation, so it is not swept; set it once in the sweep file (stored runs are judged again)"
+                )
             if not isinstance(values, list):
                 raise SweepError(f"sweep key '{dotted}' in '{source}': expected a list of values, got {_show(values)}")
             if not values:
@@ -597,6 +602,8 @@ def _take_stock(plan: SweepPlan, out_dir: Path, status: list[str]) -> list[int]:
     complete folder without any row to add (written by someone else) is computed again
     and replaced. Also removes stale temporary files and the checkpoints of stored runs.
     """
+    from harness.pipeline import judge_stored_run
+
     _remove_stale_partials(out_dir)
     indexed = _indexed_run_ids(out_dir)
     todo: list[int] = []
@@ -611,6 +618,7 @@ def _take_stock(plan: SweepPlan, out_dir: Path, status: list[str]) -> list[int]:
                 pass  # unreadable: computed again below
         if complete and run_id in indexed:
             discard_checkpoint(checkpoint_folder(out_dir, run_id))
+            judge_stored_run(out_dir / run_id, plan.scenarios[i], out_dir)  # its verdict under this file's margin
             status[i] = "reused"
         else:
             todo.append(i)
@@ -785,7 +793,20 @@ def _cmd_sweep(args) -> int:
         f"sweep: {outcome.total} points -> {out_dir}: {outcome.computed} computed, {outcome.reused} already complete, "
         f"{outcome.failed} failed ({outcome.seconds:.1f} s); {Path(out_dir) / SWEEP_JSON}\n"
     )
+    tally = verdict_tally(out_dir, plan.run_ids)
+    if tally:
+        sys.stdout.write(f"sweep: verdicts: {tally}\n")
     return 0 if outcome.ok else 1
+
+
+def verdict_tally(out_dir: str | Path, run_ids: list[str]) -> str:
+    """'5 agree, 2 inconclusive, 1 disagree' over the sweep's stored points (runs.parquet)."""
+    index = read_index(out_dir)
+    if "verdict" not in index.columns:
+        return ""
+    verdicts = index[index["run_id"].isin(run_ids)]["verdict"].dropna()
+    counts = verdicts.value_counts()
+    return ", ".join(f"{int(counts[v])} {v}" for v in ("agree", "disagree", "inconclusive", "n/a") if v in counts)
 
 
 def add_sweep_commands(subparsers) -> None:

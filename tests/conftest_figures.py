@@ -1,9 +1,9 @@
-"""Writers of synthetic run, scaling and sweep folders in the briefed on-disk format.
+"""Writers of synthetic run, scaling and sweep folders in the tool's on-disk format.
 
-The figure and report tests must not depend on the simulator or the theory being
-finished, so these helpers write folders that look like real ones: a run folder with
-scenario.toml, manifest.json, trajectories.parquet, summary.parquet and metrics.parquet;
-a scaling folder with verdict.json; a sweep folder with sweep.json and runs.parquet.
+The figure and report tests should not pay for a simulation, so these helpers make up the
+trajectories and let the tool's own code do the rest: a run folder is judged and written by
+harness.pipeline (scenario.toml, manifest.json, judgement.json and the Parquet tables); a
+scaling folder holds verdict.json; a sweep folder sweep.json and runs.parquet.
 
 The numbers are made up but shaped like the real thing: a generalisation error that
 falls through a plateau, order parameters drifting towards the teacher, a simulation that
@@ -14,40 +14,14 @@ This is a plain module (not a pytest conftest) imported by the figure and report
 
 from __future__ import annotations
 
+import datetime
 import json
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-
-def _toml_value(value: object) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, str):
-        return json.dumps(value)
-    return repr(value)
-
-
-def write_toml(path: Path, sections: dict[str, dict[str, object]]) -> None:
-    """Write a flat two-level TOML document (sections of scalars), enough for a scenario."""
-    lines: list[str] = []
-    for section, entries in sections.items():
-        lines.append(f"[{section}]")
-        lines.extend(f"{key} = {_toml_value(value)}" for key, value in entries.items())
-        lines.append("")
-    path.write_text("\n".join(lines))
-
-
-def observable_names(students: int, teachers: int, train_second_layer: bool) -> list[str]:
-    """All observable names in the briefed naming scheme (indices from 0, no spaces)."""
-    names = ["test_error", "overlap_error"]
-    names += [f"Q[{i},{j}]" for i in range(students) for j in range(students)]
-    names += [f"R[{i},{m}]" for i in range(students) for m in range(teachers)]
-    names += [f"T[{m},{n}]" for m in range(teachers) for n in range(teachers)]
-    if train_second_layer:
-        names += [f"v[{k}]" for k in range(students)]
-    return names
+from harness.trajectories import observable_names
 
 
 def _theory_curves(
@@ -100,16 +74,22 @@ def write_run_folder(
     t_max: float = 200.0,
     rng_seed: int = 0,
 ) -> Path:
-    """Write one synthetic run folder ``root/run_id`` and return its path.
+    """Write one run folder ``root/run_id`` of synthetic trajectories and return its path.
+
+    Only the trajectories are made up; the comparison, the verdict and every file come from
+    the tool's own code (harness.pipeline.computed_run and store_run), so the figure and
+    report tests read exactly the format the writer produces.
 
     ``theory_bias`` multiplies the theory's test error by (1 + bias * late) where late rises
     from 0 to 1 after t ~ 20, so a nonzero bias makes the theory depart from simulation.
     ``gaussian_equivalence_gap`` shifts the measured test error away from the overlap error
     (what a failing Gaussian equivalence looks like).
     """
+    from harness import scenario as scenario_lib
+    from harness.pipeline import computed_run, store_run
+    from harness.trajectories import from_frame
+
     rng = np.random.default_rng(rng_seed)
-    run_dir = root / run_id
-    run_dir.mkdir(parents=True)
     grid = np.concatenate([[0.0], np.geomspace(1.0 / input_dim, t_max, times - 1)])
     names = observable_names(students, teachers, train_second_layer)
     late = 1.0 / (1.0 + np.exp(-(np.log(np.maximum(grid, 1e-9)) - np.log(20.0)) * 3.0))
@@ -131,82 +111,26 @@ def write_run_folder(
                 theory = theory * (1.0 + theory_bias * late)
             sim[0] = theory[0]  # the pair starts from the same initial condition
             rows.append(pd.DataFrame({"seed": seed, "t": grid, "observable": name, "sim": sim, "theory": theory}))
-    trajectories = pd.concat(rows, ignore_index=True)
-    trajectories["seed"] = trajectories["seed"].astype("int64")
-    trajectories.to_parquet(run_dir / "trajectories.parquet", index=False)
+    frame = pd.concat(rows, ignore_index=True)
+    frame["seed"] = frame["seed"].astype("int64")
+    traj = from_frame(frame)
 
-    summary, metrics = summarise(trajectories)
-    summary.to_parquet(run_dir / "summary.parquet", index=False)
-    metrics.to_parquet(run_dir / "metrics.parquet", index=False)
-
-    write_toml(
-        run_dir / "scenario.toml",
-        {
-            "data": {"kind": "gaussian", "input_dim": input_dim},
-            "teacher": {"hidden": teachers, "activation": "erf", "noise_std": 0.0},
-            "student": {
-                "hidden": students,
-                "activation": "erf",
-                "train_second_layer": train_second_layer,
-                "init_scale": 0.1,
-            },
-            "sgd": {"learning_rate": learning_rate, "second_layer_learning_rate": learning_rate, "time": t_max},
-            "run": {"seeds": seeds, "evaluations": times, "dtype": "float64"},
-            "theory": {"source": "builtin"},
-        },
+    scenario = scenario_lib.resolve({
+        "data": {"kind": "gaussian", "input_dim": input_dim},
+        "teacher": {"hidden": teachers, "activation": "erf", "noise_std": 0.0},
+        "student": {"hidden": students, "activation": "erf", "train_second_layer": train_second_layer},
+        "sgd": {"learning_rate": learning_rate, "time": t_max},
+        "run": {"seeds": seeds, "evaluations": times, "dtype": "float64"},
+    })
+    computed = computed_run(
+        scenario, traj, started=datetime.datetime(2024, 1, 1, tzinfo=datetime.UTC),
+        timings={"simulation_s": 1.5, "theory_s": 0.7, "compile_s": 2.0, "theory_compile_s": 0.4},
     )
-    manifest = {
-        "versions": {"python": "3.11", "jax": "0.10.2", "numpy": np.__version__},
-        "jax_backend": "cpu",
-        "jax_device": "cpu:cpu",
-        "dtype": "float64",
-        "seeds": list(range(seeds)),
-        "diverged_seeds": [],
-        "start_time": "2024-01-01T00:00:00+00:00",
-        "command_line": ["harness", "run", "scenario.toml"],
-        "timings": {"simulation_s": 1.5, "theory_s": 0.7, "compile_s": 2.0},
-    }
-    (run_dir / "manifest.json").write_text(json.dumps(manifest, indent=2))
-    return run_dir
-
-
-def summarise(trajectories: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Seed averages, SEMs and z-scores (z = mean difference / its SEM), plus the metrics table."""
-    frame = trajectories.assign(diff=trajectories["sim"] - trajectories["theory"])
-    grouped = frame.groupby(["t", "observable"], sort=True)
-    summary = pd.DataFrame(
-        {
-            "sim_mean": grouped["sim"].mean(),
-            "sim_sem": grouped["sim"].sem(),
-            "theory_mean": grouped["theory"].mean(),
-            "diff_mean": grouped["diff"].mean(),
-            "diff_sem": grouped["diff"].sem(),
-        }
-    ).reset_index()
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = summary["diff_mean"] / summary["diff_sem"]
-    summary["z"] = z.where(summary["diff_sem"] > 0, 0.0)
-    metric_rows = []
-    for name, part in summary.groupby("observable", sort=False):
-        part = part.sort_values("t")
-        abs_z = part["z"].abs()
-        scale = part["theory_mean"].abs().where(part["theory_mean"].abs() > 0, 1.0)
-        rel = (part["sim_mean"] - part["theory_mean"]).abs() / scale
-        beyond = part.loc[abs_z > 4.0, "t"]
-        metric_rows.append(
-            {
-                "observable": name,
-                "max_abs_z": float(abs_z.max()),
-                "rms_z": float(np.sqrt((part["z"] ** 2).mean())),
-                "frac_within_2sem": float((abs_z <= 2.0).mean()),
-                "max_rel_err": float(rel.max()),
-                "final_rel_err": float(rel.iloc[-1]),
-                "divergence_t": float(beyond.iloc[0]) if len(beyond) else float("nan"),
-            }
-        )
-    return summary[
-        ["t", "observable", "sim_mean", "sim_sem", "theory_mean", "diff_mean", "diff_sem", "z"]
-    ], pd.DataFrame(metric_rows)
+    computed = computed._replace(
+        run_id=run_id, manifest=computed.manifest | {"run_id": run_id},
+        index_row=computed.index_row | {"run_id": run_id},
+    )
+    return store_run(computed, root).folder
 
 
 def write_scaling_folder(root: Path, name: str = "scaling_erf", *, offset: float = 0.0) -> Path:
@@ -259,6 +183,7 @@ def write_sweep_folder(
         row["test_error.max_abs_z"] = 0.8 + eta**2 * 0.6
         row["test_error.final_rel_err"] = 0.002 * eta * width
         row["test_error.divergence_t"] = 50.0 / eta if eta > 1.0 else float("nan")
+        row["verdict"] = "disagree" if eta > 1.0 else ("inconclusive" if eta > 0.4 else "agree")
         rows.append(row)
     pd.DataFrame(rows).to_parquet(folder / "runs.parquet", index=False)
     (folder / "sweep.json").write_text(json.dumps({"swept_keys": keys, "run_ids": [row["run_id"] for row in rows]}))

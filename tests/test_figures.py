@@ -58,7 +58,7 @@ def test_learning_curve_axes_labels_and_log_time(tmp_path):
     assert curve_ax.get_shared_x_axes().joined(curve_ax, residual_ax)
     assert curve_ax.get_ylabel() == r"$\varepsilon_g$"
     assert residual_ax.get_xlabel() == r"$t = \mathrm{steps}/N$"
-    assert residual_ax.get_ylabel() == "$z$"
+    assert residual_ax.get_ylabel() == "(theory − sim.) / margin"
     # t = 0 is dropped on the log axis (documented choice): no plotted point at t <= 0.
     for ax in fig.axes:
         for line in _plain_lines(ax):
@@ -74,22 +74,25 @@ def test_learning_curve_axes_labels_and_log_time(tmp_path):
     np.testing.assert_allclose(theory_line.get_xdata(), test["t"].to_numpy())
 
 
-def test_residual_panel_has_two_sigma_band_and_z(tmp_path):
+def test_residual_panel_shows_the_verdicts_band_inside_the_margin(tmp_path):
     run = write_run_folder(tmp_path, "run-b", theory_bias=0.3)
     summary = figures.read_summary(run)
-    fig = figures.plot_learning_curve(summary, show_overlap=False, divergence_t=30.0)
+    fig = figures.plot_learning_curve(summary, show_overlap=False, divergence_t=30.0, verdict="disagree")
     residual_ax = fig.axes[1]
+    # The margin is the band [-1, 1] (the difference is drawn in units of the margin).
     bands = [patch.get_path().get_extents(patch.get_patch_transform()) for patch in residual_ax.patches]
-    assert any(np.isclose(box.y0, -2.0) and np.isclose(box.y1, 2.0) for box in bands)
-    z_line = next(line for line in _plain_lines(residual_ax) if line.get_label() == r"$\varepsilon_g$")
+    assert any(np.isclose(box.y0, -1.0) and np.isclose(box.y1, 1.0) for box in bands)
     test = summary[(summary["observable"] == "test_error") & (summary["t"] > 0)].sort_values("t")
-    np.testing.assert_allclose(z_line.get_ydata(), test["z"].to_numpy())
-    # zero line, z line, marker of where the theory departs (vertical line at t = 30).
+    centre = next(line for line in _plain_lines(residual_ax) if len(line.get_xdata()) > 2)
+    np.testing.assert_allclose(centre.get_ydata(), (test["diff_mean"] / test["margin"]).to_numpy())
+    # The simultaneous band around it: diff_mean +- band, in units of the margin.
+    band = next(c for c in residual_ax.collections if c.get_label() == "simultaneous band")
+    upper = band.get_paths()[0].vertices[:, 1].max()
+    assert upper == pytest.approx(float(((test["diff_mean"] + test["band"]) / test["margin"]).max()))
+    assert residual_ax.get_title(loc="right") == "test error: disagree"
     vertical = [line for line in residual_ax.lines if np.allclose(line.get_xdata(), 30.0)]
     assert len(vertical) == 1
     assert len(fig.axes[0].lines) == 2  # no overlap curve when switched off
-    low, high = residual_ax.get_ylim()
-    assert low <= -2.0 and high >= 2.0
 
 
 def test_overlap_curve_drawn_only_when_it_differs(tmp_path):
@@ -227,7 +230,7 @@ def test_sweep_heat_map_over_two_keys(tmp_path):
     expected = runs.pivot_table(index="student.hidden", columns="sgd.learning_rate", values="test_error.max_abs_z")
     np.testing.assert_allclose(np.ma.filled(data, np.nan), expected.to_numpy())
     colourbar_ax = fig.axes[1]
-    assert colourbar_ax.get_ylabel() == r"max $|z|$ of $\varepsilon_g$"
+    assert colourbar_ax.get_ylabel() == r"max $|z|$ of $\varepsilon_g$ (detectability)"
 
 
 def test_sweep_divergence_never_cells_are_masked(tmp_path):
@@ -245,13 +248,20 @@ def test_sweep_curves_over_one_key(tmp_path):
     keys, runs = figures.read_sweep(folder)
     ax = figures.plot_sweep(keys, runs, metric="final_test_error").axes[0]
     assert ax.get_xscale() == "log"  # two decades of learning rates
-    assert len(ax.lines) == 1 and len(ax.lines[0].get_xdata()) == 5
+    curves = [line for line in ax.lines if line.get_linestyle() != "None"]
+    assert len(curves) == 1 and len(curves[0].get_xdata()) == 5
+    # Each point also carries its run's verdict: filled agree, open inconclusive, a cross disagree.
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert legend == ["agree", "inconclusive", "disagree"]
+    agree = next(line for line in ax.lines if line.get_linestyle() == "None" and len(line.get_xdata())
+                 and line.get_marker() == "o" and line.get_markerfacecolor() != "white")
+    np.testing.assert_allclose(sorted(agree.get_xdata()), [0.1, 0.3])
     assert ax.get_ylabel() == r"final $\varepsilon_g$ (simulation)"
     # One swept key chosen out of two: one curve per value of the other key.
     keys, runs = figures.read_sweep(write_sweep_folder(tmp_path, "sweep_two"))
     ax = figures.plot_sweep(keys, runs, axes_keys=["sgd.learning_rate"]).axes[0]
-    assert len(ax.lines) == 3
-    assert [t.get_text() for t in ax.get_legend().get_texts()] == ["$K$ = 2", "$K$ = 3", "$K$ = 4"]
+    assert len([line for line in ax.lines if line.get_linestyle() != "None"]) == 3
+    assert [t.get_text() for t in ax.get_legend().get_texts()][:3] == ["$K$ = 2", "$K$ = 3", "$K$ = 4"]
 
 
 def test_sweep_rejects_unknown_metric_and_axes(tmp_path):

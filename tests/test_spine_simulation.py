@@ -8,7 +8,10 @@ import pytest
 from harness import comparison, simulation
 from harness import scenario as sc
 from harness.experiment import run_experiment, simulate
+from harness.judgement import Margin
 from harness.paired_theory import builtin_iid, initial_state
+
+INNER = 13.78  # measured when written: the band lies 13.8 margins out where it lies furthest
 
 
 def test_lms_learning_curve_matches_the_exact_finite_n_recursion():
@@ -44,24 +47,26 @@ def test_lms_learning_curve_matches_the_exact_finite_n_recursion():
 
 @pytest.fixture(scope="module")
 def erf_run():
-    # 32 seeds: with S seeds z follows Student's t with S - 1 degrees of freedom, whose tails
-    # beyond 4 are far heavier for S ~ 10 than for S ~ 30 (common practice, no source).
+    # Agreement within the default 5 % margin has to be *shown*: at N = 300 the finite-size
+    # difference (~3 % of the error during its fast decay) and the seeds' spread leave 32 seeds
+    # inconclusive; at N = 1000, 48 seeds show it with room (band reach ~0.6 of the margin,
+    # measured when written).
     scenario = sc.resolve({
-        "data": {"input_dim": 300},
+        "data": {"input_dim": 1000},
         "student": {"init_std": 0.5},
-        "sgd": {"learning_rate": 1.0, "time": 20.0},
-        "run": {"seeds": 32, "evaluations": 12, "test_samples": 4000},
+        "sgd": {"learning_rate": 1.0, "time": 10.0},
+        "run": {"seeds": 48, "evaluations": 12, "test_samples": 4000},
     })
     return scenario, run_experiment(scenario)
 
 
 def test_simulation_agrees_with_paired_theory_on_a_small_erf_scenario(erf_run):
     scenario, result = erf_run
-    metric_table = comparison.metrics(comparison.summarise(result.trajectories)).set_index("observable")
+    judged = comparison.compare(result.trajectories, Margin()).judgement
     assert not np.isfinite(result.diverged_at).any()
-    checked = [o for o in metric_table.index if o == "test_error" or o.startswith(("Q[", "R["))]
-    worst = metric_table.loc[checked, "max_abs_z"]
-    assert (worst <= 4).all(), worst.to_dict()
+    verdicts = {g.group: g.verdict for g in judged.groups}
+    assert verdicts == dict.fromkeys(["test_error", "overlap_error", "Q", "R", "T"], "agree"), judged.groups
+    assert judged.verdict == "agree"
     # The theory really moved: eps_g fell by more than half, so agreement is not trivial.
     test = result.trajectories.theory[:, :, 0].mean(axis=0)
     assert test[-1] < 0.5 * test[0]
@@ -73,8 +78,13 @@ def test_the_same_machinery_flags_a_wrong_theory(erf_run):
     start = initial_state(simulation.make_simulator(scenario), result.trajectories.seeds)
     wrong = builtin_iid(scenario, start, result.trajectories.t, second_order=False)
     traj = result.trajectories._replace(theory=wrong.values)
-    metric_table = comparison.metrics(comparison.summarise(traj)).set_index("observable")
-    assert metric_table.loc["test_error", "max_abs_z"] > 6
+    comp = comparison.compare(traj, Margin())
+    test = comp.judgement.group("test_error")
+    assert comp.judgement.verdict == "disagree" and test.verdict == "disagree"
+    # How far outside the margin the band lies where it lies furthest: measured when written
+    # (48 seeds) inner = INNER; a broken SEM (missing its 1/sqrt S: the band 7x wider) or margin moves it.
+    assert test.inner == pytest.approx(INNER, rel=0.1)
+    metric_table = comp.metrics.set_index("observable")
     assert np.isfinite(metric_table.loc["test_error", "divergence_t"])
 
 

@@ -2,16 +2,18 @@
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pytest
 
-from harness import comparison, experiment, iid_theory, simulation
+from harness import comparison, experiment, iid_theory, judgement, simulation
 from harness import scenario as sc
 from harness.cli import main
 from harness.errors import InputError
+from harness.judgement import Margin
 from harness.paired_theory import InitialState, initial_state, predict
 from harness.trajectories import Trajectories, observable_names
 from harness.user_theory import interpolate_log_time, python_theory, read_theory_file
@@ -255,34 +257,43 @@ def test_relative_paths_are_relative_to_the_scenario_file(tmp_path, monkeypatch)
 # --------------------------------------------- worked example: SGD with weight decay
 
 
-def compare(simulated, prediction) -> pd.DataFrame:
+def compare(simulated, prediction) -> judgement.Judgement:
     names = observable_names(2, 2, False)
     traj = Trajectories(simulated.seeds, simulated.t, names, simulated.values, prediction.values, prediction.paired)
-    return comparison.group_verdicts(comparison.metrics(comparison.summarise(traj))).set_index("group")
+    return comparison.compare(traj, Margin()).judgement
 
 
 def test_weight_decay_example_agrees_with_its_theory_and_not_with_the_builtin(tmp_path, monkeypatch):
     monkeypatch.chdir(REPO)  # the example is imported as examples.weight_decay_theory
     s = sc.load(REPO / "examples" / "weight_decay.toml")
     assert s["sgd"]["weight_decay"] > 0
-    s = sc.with_overrides(s, {"sgd.time": 10.0, "run.evaluations": 12, "run.test_samples": 1000})
+    # The exact chain (exact in law for SGD with weight decay) at N = 1000 with 48 seeds: enough
+    # to show agreement within the 5 % margin, and to tell a decay 10 % off (measured when
+    # written: its test error departs by ~5.5 %, the band lying just outside the margin).
+    s = sc.with_overrides(s, {"sgd.time": 10.0, "run.evaluations": 12, "run.engine": "chain",
+                              "data.input_dim": 1000, "run.seeds": 48})
     simulated = experiment.simulate(s)
     start = initial_state(simulation.make_simulator(s), simulated.seeds)
 
     user = predict(s, start, simulated.t)
     verdict = compare(simulated, user)
     assert user.paired
-    for group in ("test_error", "Q", "R"):
-        assert verdict.loc[group, "max_abs_z"] <= comparison.AGREEMENT_Z, (group, verdict)
+    assert verdict.verdict == "agree", verdict.groups
+    for kappa in (0.9 * s["sgd"]["weight_decay"], 1.1 * s["sgd"]["weight_decay"]):
+        off = compare(simulated, predict(sc.with_overrides(s, {"sgd.weight_decay": kappa}), start, simulated.t))
+        test = off.group("test_error")
+        assert test.verdict != "agree" and math.isfinite(test.detected_t), (kappa, off.groups)
 
     builtin = sc.with_overrides(s, {"theory.source": "builtin"})
     with pytest.warns(UserWarning, match="describes plain SGD without weight decay"):
         plain = predict(builtin, start, simulated.t)
     verdict = compare(simulated, plain)
     for group in ("test_error", "Q", "R"):
-        assert verdict.loc[group, "max_abs_z"] > 3 * comparison.AGREEMENT_Z, (group, verdict)
+        assert verdict.group(group).verdict == "disagree", (group, verdict.groups)
 
-    # The same theory as a mean curve in a file: an unpaired comparison, which must agree too.
+    # The same theory as a mean curve in a file: an unpaired comparison. Its error bars are
+    # the seeds' own spread (the pairing no longer cancels the initial conditions), so it is
+    # judged on every group the file gives, and must never be called a disagreement.
     names = observable_names(2, 2, False)
     frame = pd.DataFrame({"t": simulated.t})
     for name in ("test_error", "Q[0,0]", "R[1,1]"):
@@ -292,4 +303,6 @@ def test_weight_decay_example_agrees_with_its_theory_and_not_with_the_builtin(tm
     assert from_file.paired is False
     np.testing.assert_allclose(from_file.values[0, :, names.index("Q[0,0]")], frame["Q[0,0]"], rtol=1e-12)
     verdict = compare(simulated, from_file)
-    assert verdict.loc["test_error", "max_abs_z"] <= comparison.AGREEMENT_Z
+    judged = {g.group: g.verdict for g in verdict.groups if g.verdict != "n/a"}
+    assert set(judged) == {"test_error", "Q", "R"}
+    assert "disagree" not in judged.values(), verdict.groups
