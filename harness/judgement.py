@@ -88,7 +88,7 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from harness.trajectories import observable_group
 
@@ -238,13 +238,23 @@ def _any_finite(values: np.ndarray) -> bool:
     return bool(np.any(np.isfinite(values)))
 
 
+def _t_upper_quantile(tail: float, dof: float) -> float:
+    """x with P(T > x) = tail for Student's t with ``dof`` degrees of freedom."""
+    return float(-special.stdtrit(dof, tail))
+
+
+def _t_tail(x: float, dof: float) -> float:
+    """P(T > x) for Student's t with ``dof`` degrees of freedom."""
+    return float(special.stdtr(dof, -x))
+
+
 def _sidak_factor(alpha: float, cells: int, seeds: int) -> float:
-    per_cell = 1.0 - (1.0 - alpha) ** (1.0 / max(cells, 1))
-    return float(stats.t.isf(per_cell / 2.0, seeds - 1))
+    per_cell = -np.expm1(np.log1p(-alpha) / max(cells, 1))  # 1 - (1 - alpha)^(1/J), without cancellation
+    return _t_upper_quantile(per_cell / 2.0, seeds - 1)
 
 
 def _pointwise_factor(alpha: float, seeds: int) -> float:
-    return float(stats.t.isf(alpha / 2.0, seeds - 1))
+    return _t_upper_quantile(alpha / 2.0, seeds - 1)
 
 
 def _bootstrap_factor(diff: np.ndarray, cells: np.ndarray, alpha: float) -> float:
@@ -261,8 +271,9 @@ def _bootstrap_factor(diff: np.ndarray, cells: np.ndarray, alpha: float) -> floa
     mean, _, _ = mean_sem(flat)
     rng = np.random.default_rng(BOOTSTRAP_STREAM)
     maxima = []
-    for start in range(0, BOOTSTRAP_RESAMPLES, 250):
-        size = min(250, BOOTSTRAP_RESAMPLES - start)
+    chunk = max(1, min(BOOTSTRAP_RESAMPLES, 4_000_000 // max(flat.shape[1], 1)))  # a few large products
+    for start in range(0, BOOTSTRAP_RESAMPLES, chunk):
+        size = min(chunk, BOOTSTRAP_RESAMPLES - start)
         counts = rng.multinomial(s, np.full(s, 1.0 / s), size=size).astype(np.float64)  # [B, S]
         n = counts @ finite
         total = counts @ values
@@ -310,8 +321,7 @@ def _band_factor_at(band: Band, seeds: float) -> float:
     """c at ``seeds`` seeds: the same normal-scale tail as c now, with seeds - 1 degrees of freedom."""
     if band.seeds < 2 or not math.isfinite(band.factor):
         return band.factor
-    tail = stats.t.sf(band.factor, band.seeds - 1)
-    return float(stats.t.isf(tail, max(seeds, 2.0) - 1))
+    return _t_upper_quantile(_t_tail(band.factor, band.seeds - 1), max(seeds, 2.0) - 1)
 
 
 def _seeds_for(gap: np.ndarray, sem: np.ndarray, band: Band, seeds: int, worst: bool) -> float:

@@ -54,12 +54,8 @@ def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
     teacher_w, teacher_v, student_w, student_v, data_params = draw_initial_weights(sim, seed_indices)
     w64 = jnp.asarray(student_w, jnp.float64)
     wt64 = jnp.asarray(teacher_w, jnp.float64)
-    Q, R, T = [], [], []
-    order_parameters = sim.model.order_parameters
-    for s in range(len(seed_indices)):
-        params_s = _index(data_params, s)
-        q, r, t = order_parameters(params_s, w64[s], wt64[s])
-        Q.append(q), R.append(r), T.append(t)
+    # One compiled program for every seed (a Python loop of eager calls cost ~2 ms a seed).
+    Q, R, T = jax.jit(jax.vmap(sim.model.order_parameters))(data_params, w64, wt64)
     ops = iid_theory.OrderParameters(
         np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
     )
@@ -69,10 +65,6 @@ def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
         np.asarray(wt64), np.asarray(w64), data_params,
         None if spectra is None else spectra(data_params, np.asarray(w64), np.asarray(wt64)),
     )
-
-
-def _index(tree: Any, s: int) -> Any:
-    return jax.tree_util.tree_map(lambda a: a[s], tree)
 
 
 def values_from_order_parameters(

@@ -13,6 +13,7 @@ from scipy import stats
 from harness import chain, experiment, threefry
 from harness import scenario as sc
 from harness.activations import get_activation
+from harness.trajectories import observable_names
 
 
 def _scenario(**overrides: object) -> dict:
@@ -155,12 +156,31 @@ def test_the_comparison_detects_a_different_dynamics(full_and_chain):
     assert min(stats.ks_2samp(full[:, c], other[:, c]).pvalue for c in range(full.shape[1])) < 1e-6
 
 
+def _erf_generalisation_error(Q: np.ndarray, R: np.ndarray, T: np.ndarray) -> np.ndarray:
+    """eps_g of erf(x / sqrt 2) networks with unit second layers, written out (Saad & Solla 1995,
+    Phys. Rev. E 52, 4225, eq. for eps_g): (1/pi) [sum_kl arcsin(Q_kl / sqrt((1+Q_kk)(1+Q_ll)))
+    + sum_mn arcsin(T_mn / sqrt((1+T_mm)(1+T_nn))) - 2 sum_km arcsin(R_km / sqrt((1+Q_kk)(1+T_mm)))]."""
+    q, t = np.diagonal(Q, axis1=-2, axis2=-1), np.diagonal(T, axis1=-2, axis2=-1)
+    student = np.arcsin(Q / np.sqrt((1 + q[..., :, None]) * (1 + q[..., None, :]))).sum(axis=(-2, -1))
+    teacher = np.arcsin(T / np.sqrt((1 + t[..., :, None]) * (1 + t[..., None, :]))).sum(axis=(-2, -1))
+    cross = np.arcsin(R / np.sqrt((1 + q[..., :, None]) * (1 + t[..., None, :]))).sum(axis=(-2, -1))
+    return (student + teacher - 2 * cross) / np.pi
+
+
 def test_chain_test_error_is_the_gaussian_formula_and_large_n_runs():
     s = _scenario(**{"data.input_dim": 1_000_000, "sgd.time": 0.0005, "run.evaluations": 3, "run.test_samples": 1})
     result = experiment.simulate(s)
-    np.testing.assert_array_equal(result.values[..., 0], result.values[..., 1])  # test_error == overlap_error
     assert np.all(np.isfinite(result.values))
     assert result.steps[-1] == 500
+    names = observable_names(2, 2, False)
+    Q, R, T = (
+        result.values[..., [names.index(f"{family}[{i},{j}]") for i in range(2) for j in range(2)]]
+        .reshape(*result.values.shape[:2], 2, 2)
+        for family in "QRT"
+    )
+    expected = _erf_generalisation_error(Q, R, T)
+    np.testing.assert_allclose(result.values[..., names.index("test_error")], expected, rtol=1e-10)
+    np.testing.assert_allclose(result.values[..., names.index("overlap_error")], expected, rtol=1e-10)
 
 
 @pytest.mark.parametrize(

@@ -79,11 +79,11 @@ def test_bootstrap_factor_of_perfectly_correlated_times_is_the_pointwise_one():
     assert band.factor == pytest.approx(stats.t.isf(0.025, 399), rel=0.05)
 
 
-def _judge(diff: np.ndarray, size: float = 1.0, margin: Margin = Margin()) -> judgement.Judgement:
-    """Judge an order-parameter group 'Q' whose largest size is ``size`` (delta = margin * size)."""
+def _judge(diff: np.ndarray, size: float = 1.0) -> judgement.Judgement:
+    """Judge an order-parameter group 'Q' whose largest size is ``size`` (delta = 0.05 * size)."""
     e = diff.shape[1]
     sim_mean = np.full((e, 1), size)
-    return judgement.judge_differences(np.arange(e, dtype=float), diff, sim_mean, ["Q[0,0]"], margin)
+    return judgement.judge_differences(np.arange(e, dtype=float), diff, sim_mean, ["Q[0,0]"], Margin())
 
 
 def test_outcomes_on_constructed_cells():
