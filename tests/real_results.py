@@ -4,10 +4,11 @@ This is a plain module (not a pytest conftest) imported by the tests of what the
 writes: file modes, strict formats, the report in a browser. Nothing here is hand-written
 output: one tiny scenario (N = 20, 3 seeds, t = 1, 4 evaluations, 100 held-out samples) goes
 through `harness run`, a finite-size scaling over N = 20, 30, 40 (the function behind
-`harness scale`, which reuses the N = 20 run), a two-point learning-rate sweep (the sweep
-driver, its points computed in this process so the compiled programs are shared), and
-`harness report`. Everything is made under umask 022 so the file-mode test can check it.
-About a minute on 2 cores, most of it compiling and drawing figures; made once
+`harness scale`, which reuses the N = 20 run) and `harness report`; and, in a folder of its
+own that the report does not draw (figures cost about 3 s a run), a two-point learning-rate
+sweep (the sweep driver, its points computed in this process so the compiled programs are
+shared). Everything is made under umask 022 so the file-mode test can check it. About 40 s
+on a quiet 2-core machine, most of it compiling and drawing figures; made once
 (``functools.cache``) in a temporary folder removed when the session ends.
 """
 
@@ -101,12 +102,12 @@ class InProcessExecutor:
 
 
 class RealResults(NamedTuple):
-    root: Path  # the results folder given to `harness report`
+    root: Path  # the results folder given to `harness report`: the run and the scaling
     scenario_file: Path
     run_id: str  # the N = 20 run made by `harness run`
     verdict: dict[str, Any]  # what run_scaling returned (and wrote as verdict.json)
     scale_folder: Path
-    sweep_folder: Path
+    sweep_folder: Path  # beside root, not in it
     sweep_plan: Any
     run_stdout: str
 
@@ -139,7 +140,7 @@ def real_results() -> RealResults:
             scenario, scaling.parse_sizes(SIZES), root, log=io.StringIO(), show_progress=False
         )
         plan = sweep.load_sweep(sweep_file)
-        sweep_folder = root / "lr-sweep"
+        sweep_folder = base / "lr-sweep"
         outcome = sweep.run_sweep(plan, sweep_folder, InProcessExecutor(), show_progress=False, stream=io.StringIO())
         assert outcome.ok and outcome.computed == 2, outcome
         with contextlib.redirect_stdout(io.StringIO()):

@@ -1,6 +1,6 @@
 """The report as a person sees it: a real headless Chromium opens the static page from disk.
 
-The results folder is real (tests/real_results.py: `harness run`, a scaling, a sweep, then
+The results folder is real (tests/real_results.py: `harness run`, a scaling, then
 `harness report`). Chromium is driven through its DevTools protocol over a pipe
 (``--remote-debugging-pipe``: JSON messages ended by a NUL byte on file descriptors 3 and 4),
 so no driver package and no network port is needed. The page is opened as ``file://`` with
@@ -238,9 +238,10 @@ def test_the_report_in_a_real_browser(page, tmp_path):
     check_loaded_page(page, other.as_uri(), since)
 
     # A run's card, reached by its anchor as a link from a colleague would: the page scrolls to it.
+    # Looked at as loaded, before every lazy figure is made to load: figures above the card have
+    # no size until they load, so loading them all moves the card down.
     anchor = report._anchor("run", results.run_id)
     since = page.open(f"{index.as_uri()}#{anchor}")
-    check_loaded_page(page, index.as_uri(), since)
     where = page.evaluate(
         f"[document.getElementById({json.dumps(anchor)}).getBoundingClientRect().top, window.scrollY, "
         "window.innerHeight, document.documentElement.scrollHeight]"
@@ -249,6 +250,10 @@ def test_the_report_in_a_real_browser(page, tmp_path):
     at_bottom = scrolled + window_height >= page_height - 2  # a card near the end cannot reach the top
     assert scrolled > 0 and -2 < top < window_height and (abs(top) < 2 or at_bottom), where
     page.screenshot(tmp_path / "run.png", full_page=False)
+    check_loaded_page(page, index.as_uri(), since)
+    card_text = page.evaluate(f"document.getElementById({json.dumps(anchor)}).textContent")
+    started = json.loads((results.root / results.run_id / "manifest.json").read_text())["started"]
+    assert started in card_text  # the manifest table shows when the run started
 
     for name in ("index.png", "run.png"):
         assert (tmp_path / name).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

@@ -97,6 +97,7 @@ def test_everything_a_run_scaling_sweep_and_report_write_follows_umask_022():
     kinds = {path.suffix for path in results.root.rglob("*") if path.is_file()}
     assert {".json", ".parquet", ".toml", ".png", ".pdf", ".html"} <= kinds  # every kind of output is there
     assert_modes(results.root, 0o644, 0o755)
+    assert_modes(results.sweep_folder, 0o644, 0o755)
 
 
 def test_a_run_and_its_report_under_umask_027_are_0640_and_0750(tmp_path):
@@ -115,7 +116,7 @@ def test_a_run_and_its_report_under_umask_027_are_0640_and_0750(tmp_path):
 
 def test_every_json_file_in_the_results_is_strict_json():
     results = real_results()
-    found = sorted(results.root.rglob("*.json"))
+    found = sorted([*results.root.rglob("*.json"), *results.sweep_folder.rglob("*.json")])
     names = {path.name for path in found}
     assert {"manifest.json", "verdict.json", "sweep.json"} <= names
     for path in found:
