@@ -35,7 +35,7 @@ from typing import Any, NamedTuple
 import jax
 import numpy as np
 
-from harness.results_store import atomic_write_bytes
+from harness.results_store import atomic_write_bytes, json_text
 
 FILE_NAME = "checkpoint.npz"
 FORMAT_VERSION = 1
@@ -119,7 +119,7 @@ class Checkpointer:
         arrays.update({f"records/{i}": leaf for i, leaf in enumerate(record_leaves)})
         arrays["identity/steps"] = self.steps
         arrays["identity/train_key"] = self.train_key
-        arrays["meta"] = np.frombuffer(json.dumps(meta).encode("utf-8"), dtype=np.uint8)
+        arrays["meta"] = np.frombuffer(json_text(meta, indent=None).encode("utf-8"), dtype=np.uint8)
         buffer = io.BytesIO()
         np.savez(buffer, **arrays)
         try:

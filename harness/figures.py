@@ -47,7 +47,7 @@ from matplotlib.lines import Line2D  # noqa: E402
 
 from harness import comparison  # noqa: E402
 from harness.errors import InputError  # noqa: E402
-from harness.results_store import atomic_write_bytes  # noqa: E402
+from harness.results_store import atomic_write_bytes, nulls_as_nan  # noqa: E402
 
 # ---------------------------------------------------------------------------------------
 # House style
@@ -641,7 +641,7 @@ SCALING_KEYS = (
 
 def read_scaling(folder: Path) -> dict:
     path = Path(folder) / "verdict.json"
-    content = read_json(path)
+    content = nulls_as_nan(read_json(path))  # strict JSON writes a non-finite number as null
     missing = [key for key in SCALING_KEYS if key not in content]
     if missing:
         raise FigureInputError(f"{path}: missing key(s) {', '.join(missing)}")

@@ -532,7 +532,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
     manifest_items = [
         ("seeds", run.manifest.get("seeds")),
         ("diverged seeds", diverged),
-        ("start time", run.manifest.get("start_time")),
+        ("start time", run.manifest.get("started")),
         (
             "backend / dtype",
             f"{run.manifest.get('jax_backend', '?')} / {run.manifest.get('dtype', '?')}",

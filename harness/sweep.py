@@ -77,6 +77,7 @@ from harness.results_store import (
     is_abandoned,
     is_complete_run,
     read_index,
+    read_json,
     remove_index_leftovers,
 )
 
@@ -612,7 +613,7 @@ def _take_stock(plan: SweepPlan, out_dir: Path, status: list[str]) -> list[int]:
         set_aside = _set_aside_row_path(out_dir, run_id)
         if complete and run_id not in indexed and set_aside.is_file():
             try:
-                append_index_row(out_dir, json.loads(set_aside.read_text()))
+                append_index_row(out_dir, read_json(set_aside, null_as_nan=True))  # null: a NaN metric
                 indexed.add(run_id)
             except (OSError, ValueError):
                 pass  # unreadable: computed again below
