@@ -39,10 +39,11 @@ def _number(value, digits: int = 3) -> str:
     return "-" if value is None or value != value else f"{value:.{digits}g}"
 
 
-def _seeds(value) -> str:
-    if value is None or value != value:
+def _seeds(value, verdict: str) -> str:
+    """Seeds that would settle an inconclusive verdict (None in judgement.json: none would)."""
+    if verdict != "inconclusive":
         return "-"
-    return "none would" if value == float("inf") else f"about {int(value)}"
+    return "none would" if value is None or value != value or value == float("inf") else f"about {int(value)}"
 
 
 def format_judgement(record: dict) -> list[str]:
@@ -56,7 +57,7 @@ def format_judgement(record: dict) -> list[str]:
         verdict = g["verdict"].upper() if g["verdict"] == "disagree" else g["verdict"]
         lines.append(
             f"  {g['group']:<15}{verdict:<14}{_number(g['worst_ratio']):>14}{_number(g['reach']):>13}"
-            f"{_number(g['detected_t']):>12}{_number(g['departs_t']):>10}  {_seeds(g['seeds_needed'])}"
+            f"{_number(g['detected_t']):>12}{_number(g['departs_t']):>10}  {_seeds(g['seeds_needed'], g['verdict'])}"
         )
     verdict = record["verdict"]
     text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"

@@ -212,17 +212,22 @@ def gap_report(traj: Trajectories, margin: Margin, diverged_at: np.ndarray | Non
     return report
 
 
+def _number(value: Any) -> float:
+    """A stored number, None (strict JSON's NaN) read as NaN."""
+    return math.nan if value is None else float(value)
+
+
 def _percent(value: float) -> str:
     return f"{100 * value:+.0f} %" if math.isfinite(value) else "-"
 
 
 def _sized(gap: dict[str, Any], what: str) -> str:
-    """'test_error below the formula by 58 % on average [52 %, 64 %], same sign in 16 of 16 seeds'."""
-    if not math.isfinite(gap.get("relative", math.nan)):
+    """'test_error - formula: -58 % on average [-64 %, -52 %], same sign in 16 of 16 seeds'."""
+    if not math.isfinite(_number(gap.get("relative"))):
         return ""
-    text = f"{what} {_percent(gap['relative'])} on average"
-    if math.isfinite(gap.get("relative_low", math.nan)):
-        text += f" [{_percent(gap['relative_low'])}, {_percent(gap['relative_high'])}]"
+    text = f"{what} {_percent(_number(gap['relative']))} on average"
+    if math.isfinite(_number(gap.get("relative_low"))):
+        text += f" [{_percent(_number(gap['relative_low']))}, {_percent(_number(gap['relative_high']))}]"
     return text + f", same sign in {gap['same_sign']} of {gap['seeds']} seeds"
 
 

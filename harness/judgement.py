@@ -176,25 +176,19 @@ class Judgement(NamedTuple):
         ]
 
     def to_dict(self) -> dict:
-        """A JSON-ready summary (non-finite numbers as None)."""
+        """The verdict, its settings and band, and every group's outcome (judgement.json)."""
         return {
             "verdict": self.verdict,
-            "seeds_needed": _json_number(self.seeds_needed),
+            "seeds_needed": self.seeds_needed,
             "margin": self.margin.margin,
             "floor": self.margin.floor,
             "alpha": self.margin.alpha,
-            "band_factor": _json_number(self.band.factor),
+            "band_factor": self.band.factor,
             "band_method": self.band.method,
             "band_seeds": self.band.seeds,
             "band_cells": self.band.cells,
-            "groups": [{k: _json_number(v) for k, v in g._asdict().items()} for g in self.groups],
+            "groups": [g._asdict() for g in self.groups],
         }
-
-
-def _json_number(value):
-    if isinstance(value, float | np.floating) and not math.isfinite(float(value)):
-        return None
-    return float(value) if isinstance(value, np.floating) else value
 
 
 # --------------------------------------------------------------------------- statistics

@@ -29,6 +29,7 @@ from harness.results_store import (
     atomic_write_parquet,
     atomic_write_text,
     is_complete_run,
+    strict_json_value,
     write_run_folder,
 )
 from harness.trajectories import Trajectories, from_frame, observable_names
@@ -99,23 +100,12 @@ def index_row(
 
 
 def judgement_record(comp: comparison.Comparison) -> dict[str, Any]:
-    """What ``judgement.json`` holds: the verdict, its settings and band, the groups and the gaps."""
-    record = comp.judgement.to_dict()
-    record["gaps"] = json_ready(comp.gaps)
-    return record
+    """What ``judgement.json`` holds: the verdict, its settings and band, the groups and the gaps.
 
-
-def json_ready(value: Any) -> Any:
-    """Nested dicts/lists with non-finite floats as None (strict JSON)."""
-    if isinstance(value, dict):
-        return {key: json_ready(item) for key, item in value.items()}
-    if isinstance(value, list | tuple):
-        return [json_ready(item) for item in value]
-    if isinstance(value, float | np.floating):
-        return float(value) if np.isfinite(value) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    return value
+    Non-finite numbers are None, as in the file (strict JSON): a ``seeds_needed`` of None
+    means "no number of seeds would settle it" where the verdict is inconclusive.
+    """
+    return strict_json_value({**comp.judgement.to_dict(), "gaps": comp.gaps})
 
 
 class ComputedRun(NamedTuple):
