@@ -237,3 +237,64 @@ def test_too_fine_a_resolution_is_inconclusive_and_reuses_the_runs(results, caps
     assert status == 3 and verdict["verdict"] == "inconclusive", captured.out
     assert captured.err.count("reused") == 4  # every size came from the store
     assert verdict["advice"] and "to settle it" in captured.out
+
+
+# ------------------------------------------------------------ few sizes, paired sizes
+
+
+def test_three_sizes_fit_no_exponent_and_bound_the_offset_for_every_exponent():
+    # Three points cannot fix a, b and c: the exponent is held fixed on a grid, never fitted
+    # (no "b = 0.8 +- 377"), and each claim takes the least favourable b.
+    sizes = np.array([100.0, 200.0, 400.0])
+    u = (2.0 / sizes) ** 2
+    fit = scaling.fit_scaling(sizes, u, 0.05 * u)
+    assert not fit.exponent_fitted and fit.dof == 1 and np.isnan(fit.exponent_err)
+    assert fit.offset_significance < 2
+    # b = 3 (fastest decay) puts nearly the whole last gap into the offset: the upper limit
+    # cannot be below about the gap at N = 400 (0.005).
+    assert fit.offset_upper >= 0.8 * 2.0 / 400
+    flat = scaling.fit_scaling(sizes, np.full(3, 0.04**2), np.full(3, 0.02 * 0.04**2))
+    assert flat.offset_significance > 5 and flat.offset == pytest.approx(0.04, rel=0.02)
+
+
+def _paired_differences(offset: float, amplitude: float, seeds: int = 12, times: int = 10) -> dict[int, np.ndarray]:
+    """theory - simulation of the same seeds at N = 100, 200, 400: mu(N) + noise shared across sizes.
+
+    Common random numbers make a seed's noise nearly the same at every size (here: a shared
+    part plus a smaller part of its own), which is what makes the paired ratio precise.
+    """
+    rng = np.random.default_rng(7)
+    shared = rng.normal(0.0, 0.02, size=(seeds, times))
+    out = {}
+    for n in (100, 200, 400):
+        mu = offset + amplitude * 100.0 / n
+        out[n] = mu + shared + rng.normal(0.0, 0.004, size=(seeds, times))
+    return out
+
+
+def test_a_flat_clearly_nonzero_gap_is_inconsistent_by_the_paired_shrink_test():
+    # The case that slipped through before: a gap flat from N = 100 to 400 (0.0388, 0.0387,
+    # 0.0386 with 12 seeds, common random numbers) called inconclusive. The same seeds' squared
+    # gaps barely fall (ratio ~1) where a finite-size gap must fall to 1/4 or less.
+    diffs = _paired_differences(offset=0.0388, amplitude=0.0)
+    test = scaling.shrink_test((100, diffs[100]), (400, diffs[400]), min_exponent=0.5)
+    assert test.bound == pytest.approx(0.25) and test.ratio == pytest.approx(1.0, abs=0.2)
+    assert test.flat and test.excess > 3 and test.large_significance > 3
+    gaps = [scaling.SizeGap(n, *scaling.squared_gap(d), 12, 10, 0.5, 0.0, 0.0) for n, d in diffs.items()]
+    fit = scaling.fit_scaling([100, 200, 400], [g.squared_gap for g in gaps], [g.squared_gap_err for g in gaps])
+    verdict = scaling.decide(gaps, fit, tolerance=0.01, seeds=12, shrink=test)
+    assert verdict.verdict == "inconsistent" and "does not shrink" in verdict.reason
+
+
+def test_a_gap_falling_like_one_over_n_passes_the_shrink_test():
+    diffs = _paired_differences(offset=0.0, amplitude=0.04)
+    test = scaling.shrink_test((100, diffs[100]), (400, diffs[400]), min_exponent=0.5)
+    assert test.ratio == pytest.approx(1 / 16, abs=0.05) and not test.flat and test.excess < 0
+
+
+def test_shared_noise_alone_is_not_a_flat_gap():
+    # With common random numbers the noise repeats at every size, so the ratio of two pure-noise
+    # squared gaps is ~1 too; a gap that is not clearly there is never called flat.
+    diffs = _paired_differences(offset=0.0, amplitude=0.0)
+    test = scaling.shrink_test((100, diffs[100]), (400, diffs[400]), min_exponent=0.5)
+    assert not test.flat and test.large_significance < 3
