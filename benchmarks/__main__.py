@@ -25,6 +25,7 @@ SECTIONS: dict[str, tuple[str, str]] = {
     "end_to_end": ("benchmarks.end_to_end", "run"),
     "latent": ("benchmarks.latent", "run"),
     "sweep": ("benchmarks.sweep", "run"),
+    "calibration": ("benchmarks.calibration", "run"),
 }
 
 
