@@ -153,7 +153,12 @@ def _add_core_commands(subparsers) -> None:
     run.add_argument("--quiet", action="store_true", help="no progress line")
     run.set_defaults(handler=_cmd_run)
 
-    theory = subparsers.add_parser("theory", help="solve the theory alone from the initial conditions a run would draw")
+    theory = subparsers.add_parser(
+        "theory", help="solve the theory alone from the initial conditions a run would draw",
+        description="Solve the scenario's theory alone, from the initial conditions a run would draw, and store it. "
+        "Exit status: 0 (or, when judged against a stored simulation, 0 agree, 1 disagree, 3 inconclusive), "
+        "2 bad input.",
+    )
     theory.add_argument("scenario", nargs="?", help="scenario TOML file (default: the embedded default scenario)")
     theory.add_argument("--out", type=Path, default=DEFAULT_OUT, help="results folder (default: results/)")
     theory.add_argument("--force", action="store_true", help="redo an identical stored theory run")

@@ -344,7 +344,8 @@ def plot_learning_curve(
     each with its own paired theory in the same hue, for at most ``seeds_shown`` seeds.
     ``show_overlap`` None draws overlap_error only when it differs from test_error.
     The lower panel shows theory - simulation divided by the agreement margin with its
-    simultaneous band (harness.judgement); ``verdict`` (the test_error group's) titles it.
+    simultaneous band (harness.judgement); ``verdict`` (e.g. "test error: agree · run: agree")
+    titles it.
     ``divergence_t`` (metrics.parquet: the first time the band lies wholly outside the
     margin) is marked by a vertical line in the residual panel.
     Non-finite values (a diverged seed can make a mean infinite) are left out of the lines.
@@ -438,7 +439,7 @@ def _draw_residuals(
                     if ok.any() else 1.6)
         ax.set_ylim(-min(bound, 8.0) * 1.05, min(bound, 8.0) * 1.05)
         if verdict:
-            ax.set_title(f"test error: {verdict}", loc="right", fontsize=7, pad=2)
+            ax.set_title(verdict, loc="right", fontsize=7, pad=2)
     else:
         ax.axhspan(-2.0, 2.0, color=BAND_GREY, linewidth=0, zorder=0)
         z = test["z"].to_numpy(dtype=float)
@@ -1048,8 +1049,13 @@ def write_run_figures(run_dir: Path, options: FigureOptions = FigureOptions()) -
     trajectories = read_trajectories(run_dir, ["test_error"]) if options.per_seed else None
     test_metrics = metrics[metrics["observable"] == "test_error"]
     divergence = float(test_metrics["divergence_t"].iloc[0]) if len(test_metrics) else None
-    verdict = str(test_metrics["group_verdict"].iloc[0]) if "group_verdict" in test_metrics and len(test_metrics) \
-        else None
+    verdict = None
+    if "group_verdict" in test_metrics and len(test_metrics):
+        from harness.pipeline import read_judgement
+
+        record = read_judgement(run_dir) or {}
+        verdict = f"test error: {test_metrics['group_verdict'].iloc[0]}" + (
+            f" · run: {record['verdict']}" if record.get("verdict") else "")
     out = run_dir / "figures"
     written: list[Path] = []
     try:

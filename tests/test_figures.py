@@ -77,7 +77,8 @@ def test_learning_curve_axes_labels_and_log_time(tmp_path):
 def test_residual_panel_shows_the_verdicts_band_inside_the_margin(tmp_path):
     run = write_run_folder(tmp_path, "run-b", theory_bias=0.3)
     summary = figures.read_summary(run)
-    fig = figures.plot_learning_curve(summary, show_overlap=False, divergence_t=30.0, verdict="disagree")
+    fig = figures.plot_learning_curve(summary, show_overlap=False, divergence_t=30.0,
+                                      verdict="test error: disagree")
     residual_ax = fig.axes[1]
     # The margin is the band [-1, 1] (the difference is drawn in units of the margin).
     bands = [patch.get_path().get_extents(patch.get_patch_transform()) for patch in residual_ax.patches]
