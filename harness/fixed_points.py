@@ -609,7 +609,11 @@ def learning_rate_limit(problem: Problem, start: np.ndarray) -> RateLimit:
             hi = mid
         else:
             lo, guess = mid, found.x
-    return RateLimit(0.5 * (lo + hi), (lo, hi), "bisection on the leading real part of the eigenvalues")
+    note = "bisection on the leading real part of the eigenvalues"
+    if not teacher_is_the_point:
+        note += (f"; the largest order parameter of the point followed by continuation is {_scale(guess):.3g} "
+                 "at the last stable rate (a large value: it runs off to infinity there)")
+    return RateLimit(0.5 * (lo + hi), (lo, hi), note)
 
 
 # --------------------------------------------------------------------------- a scenario
