@@ -40,11 +40,20 @@ Finding the points
   Q = init_std^2 I + R T^-1 R^T, which keeps the covariance positive definite) for the same
   time, then polished.
 
-Newton's method is optimistix's (``optimistix.Newton``, the Jacobian by forward-mode automatic
-differentiation, linear solves by lineax; a least-squares solve, so a singular Jacobian from a
-neutral direction does not break a step). A point is accepted when Newton reports success and
-max|F| <= ``RESIDUAL_TOLERANCE``; its residual is reported either way. The stability Jacobian is
-``jax.jacfwd`` of the reduced field; eigenvalues by ``numpy.linalg.eig``.
+Newton's method (:func:`newton`) is damped: the step solves J dx = -F in the least-squares sense
+(so a Jacobian made singular by a neutral direction does not break it) and is halved until the
+new point is admissible and has a smaller max|F|. F and J = ``jax.jacfwd`` of the reduced field
+are one compiled function; the iteration itself runs on the host (a few dozen calls of a small
+compiled function, and no second compilation of the flow's derivatives). *Admissible* means the
+covariance [[Q, R], [R^T, T]] is positive semi-definite: only then are Q, R overlaps of real
+weights; outside, the Gaussian-average formulas still return numbers and Newton's method finds
+spurious roots there (measured: with label noise, points with Q < R^2 and negative "error"). A
+point is accepted when max|F| <= ``RESIDUAL_TOLERANCE`` x max(1, max|x|) at an admissible point;
+its residual is reported either way. Eigenvalues by ``numpy.linalg.eig`` of the same Jacobian.
+For activations integrated by quadrature (tanh, sigmoid, relu), the Jacobian at the teacher is
+not finite: the quadrature differentiates square roots of the covariance's eigenvalues, one of
+which is zero when a student unit equals a teacher unit. Stability there is reported as unknown
+(NaN); erf and linear use closed forms and are unaffected.
 
 What the eigenvalues predict
 ----------------------------
@@ -78,10 +87,19 @@ leading eigenvalue is -eta. The quadratic coefficient is computed for a real lea
   (0 in the realizable noiseless case).
 * Learning-rate limit: the largest eta (second-layer rate held at its scenario value) at which
   the specialised point has all non-neutral eigenvalues in the left half-plane, by bisection on
-  the leading real part (``BISECTION_STEPS`` halvings of a bracket found by doubling from the
-  scenario's rate; the point is followed by Newton continuation from the last stable eta). A rate
-  at which no fixed point is found (with noise the point runs off to infinity at the limit) counts
-  as unstable. Bisection assumes one crossing: stable below, unstable above.
+  the leading real part (halvings of a bracket found by doubling from the scenario's rate, to a
+  relative width 1e-9, or 1e-6 when the point is followed by continuation). Bisection assumes one
+  crossing: stable below, unstable above. Without
+  label noise in the realizable case the point is the teacher at every rate, and the limit is
+  where the teacher loses stability (K = M = 1 erf: pi sqrt(15) / 3; linear: 2). Otherwise the
+  point is followed from the last stable rate by natural-parameter continuation (:func:`follow`);
+  a rate the branch cannot be followed to counts as unstable. With label noise the branch does
+  not end where the noiseless teacher loses stability: the exchange of stability between the
+  teacher and the fixed point that crosses it unfolds into one smooth branch, whose weights grow
+  without bound as eta approaches a larger limit (measured, K = M = 1 erf, sigma = 0.3: Q ~ 10^4 at
+  eta = 6.50, against 4.06 without noise). The limit is then known only as well as the
+  continuation can follow a point running off to infinity (about 1e-3 relative), and the note
+  beside it says how large the order parameters had become.
 
 The scenario's teacher is summarised by its large-N overlaps T = teacher.init_std^2 I (i.i.d.
 Gaussian teacher weights) and its second layer; pass explicit ``T`` to the array-level functions
@@ -466,13 +484,14 @@ def analyse(problem: Problem, x: np.ndarray, *, error_exponent_too: bool = True,
     x1, converged = (np.asarray(x, np.float64), True) if exact else newton(problem, x)
     value, jacobian = (np.asarray(a) for a in problem.compiled.flow(jnp.asarray(x1), problem.constants))
     exponent, error = ErrorExponent(math.nan, "none"), math.nan
+    if error_exponent_too:
+        error = float(problem.compiled.error(jnp.asarray(x1), problem.constants)[0])
     if np.all(np.isfinite(jacobian)):
         eigenvalues = np.linalg.eigvals(jacobian)
         eigenvalues = eigenvalues[np.argsort(-eigenvalues.real, kind="stable")]
         neutral = int(np.sum(_neutral_mask(eigenvalues)))
         if error_exponent_too:
             exponent = error_exponent(problem, x1, jacobian)
-            error = float(problem.compiled.error(jnp.asarray(x1), problem.constants)[0])
     else:
         eigenvalues, neutral = np.full(len(x1), np.nan + 0j), 0
     Q, R, v = unpack_numpy(problem.layout, x1, np.asarray(problem.constants.student_v))
@@ -538,20 +557,27 @@ class RateLimit(NamedTuple):
 def follow(problem: Problem, start: np.ndarray, eta_to: float) -> FixedPoint | None:
     """Continue the fixed point ``start`` (at the problem's learning rate) to ``eta_to``.
 
-    Natural-parameter continuation: Newton at each new rate starts from the point at the last
-    one; the step in eta starts at CONTINUATION_STEP x eta, grows by half after a success and is
-    halved after a failure. None after CONTINUATION_FAILURES halvings in a row, or once the step is
-    below 1e-6 x eta: the branch ends there (a fold, or the point runs off to infinity, as it does
-    with label noise at the limit).
+    Natural-parameter continuation with a secant predictor: Newton at each new rate starts from
+    the straight-line extrapolation of the last two points (the last point alone at first, or when
+    the extrapolation is not admissible). The step in eta starts at CONTINUATION_STEP x eta, grows
+    by half after a success and is halved after a failure. None after CONTINUATION_FAILURES
+    halvings in a row, or once the step is below 1e-6 x eta: the branch ends there (a fold, or the
+    point runs off to infinity, as it does with label noise at the limit).
     """
     eta, x = problem.learning_rate, np.asarray(start)
+    previous: tuple[float, np.ndarray] | None = None
     point = None
     step, failures = CONTINUATION_STEP * eta, 0
     while eta != eta_to:
         step = min(step, abs(eta_to - eta))
         trial = eta_to if step == abs(eta_to - eta) else eta + math.copysign(step, eta_to - eta)
-        found = analyse(problem.with_learning_rate(trial), x, error_exponent_too=False)
+        guess = x
+        if previous is not None:
+            extrapolated = x + (x - previous[1]) * (trial - eta) / (eta - previous[0])
+            guess = extrapolated if is_admissible(problem, extrapolated) else x
+        found = analyse(problem.with_learning_rate(trial), guess, error_exponent_too=False)
         if found.converged:
+            previous = (eta, x)
             eta, x, point, failures = trial, found.x, found, 0
             step *= 1.5
         else:
@@ -581,6 +607,10 @@ def learning_rate_limit(problem: Problem, start: np.ndarray) -> RateLimit:
         return point if point is not None and point.stable else None
 
     lo, guess = eta0, np.asarray(start)
+    first = analyse(problem, guess, error_exponent_too=False, exact=teacher_is_the_point)
+    if not np.all(np.isfinite(first.eigenvalues)):
+        return RateLimit(math.nan, (math.nan, math.nan), "the Jacobian at the specialised point is not finite "
+                         "(quadrature activations at the teacher: see the module docstring)")
     found = stable_point(lo, eta0, guess)
     if found is None:  # unstable at the scenario's rate: halve until stable
         hi = lo
@@ -600,8 +630,10 @@ def learning_rate_limit(problem: Problem, start: np.ndarray) -> RateLimit:
             if found is None:
                 break
             lo, guess = hi, found.x
+    # a branch running off to infinity is followed only to about 1e-3 (module docstring)
+    width = 1e-9 if teacher_is_the_point else 1e-6
     for _ in range(BISECTION_STEPS):
-        if hi - lo <= 1e-9 * hi:
+        if hi - lo <= width * hi:
             break
         mid = 0.5 * (lo + hi)
         found = stable_point(mid, lo, guess)

@@ -70,7 +70,8 @@ def print_summary(result: dict[str, Any], stream: TextIO) -> None:
         if not point["found"]:
             stream.write(f"  {name:<14} not found: {point.get('reason') or 'Newton did not converge'}\n")
             continue
-        stability = "stable" if point["stable"] else "unstable"
+        stability = "unknown stability" if point["leading_eigenvalue"] is None else (
+            "stable" if point["stable"] else "unstable")
         leading = _show(point["leading_eigenvalue"], "+.5g")
         stream.write(
             f"  {name:<14} eps = {_show(point['error'])}, leading eigenvalue {leading} ({stability}), "
