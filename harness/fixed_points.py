@@ -138,6 +138,8 @@ CONTINUATION_STEP = 0.05
 """First relative step in eta when a fixed point is followed to another learning rate."""
 CONTINUATION_FAILURES = 6
 """Failed continuation steps in a row (each halving the step) after which a branch is given up."""
+RUN_OFF_SIZE = 100.0
+"""Order parameters this large at the limit are reported as a point running off to infinity."""
 MAX_LEARNING_RATE = 1e4
 """Doubling stops here: a point stable at every rate up to it reports no limit."""
 _ODE_TOLERANCES = {"rtol": 1e-10, "atol": 1e-12, "max_steps": 400_000}
@@ -523,8 +525,9 @@ def unspecialised_point(problem: Problem, initial_q: float) -> FixedPoint | str:
 def is_realizable(problem: Problem) -> bool:
     """K = M, same activations, and a student second layer equal to the teacher's or trained."""
     static, layout, c = problem.static, problem.layout, problem.constants
-    same_layer = layout.trained or np.allclose(np.asarray(c.student_v), np.asarray(c.teacher_v))
-    return layout.K == layout.M and static.student == static.teacher and same_layer
+    if layout.K != layout.M or static.student != static.teacher:
+        return False
+    return layout.trained or np.allclose(np.asarray(c.student_v), np.asarray(c.teacher_v))
 
 
 def specialised_start(problem: Problem, initial_q: float, seed: int = 0) -> np.ndarray:
@@ -643,8 +646,10 @@ def learning_rate_limit(problem: Problem, start: np.ndarray) -> RateLimit:
             lo, guess = mid, found.x
     note = "bisection on the leading real part of the eigenvalues"
     if not teacher_is_the_point:
-        note += (f"; the largest order parameter of the point followed by continuation is {_scale(guess):.3g} "
-                 "at the last stable rate (a large value: it runs off to infinity there)")
+        size = _scale(guess)
+        note += f"; the point, followed by continuation, has largest order parameter {size:.3g} at the last stable rate"
+        if size > RUN_OFF_SIZE:
+            note += " (it runs off to infinity there; the limit is known to about 1e-3)"
     return RateLimit(0.5 * (lo + hi), (lo, hi), note)
 
 
