@@ -61,9 +61,10 @@ def _trajectory(scenario: dict, Q0, R0, times, tolerances=TIGHT):
 # det = 2 x^2 / 9 - x^3 / (3 sqrt 15), trace = -7 x / (3 sqrt 3) + x^2 / sqrt 5. The trace stays
 # negative past the point where det changes sign, so the teacher is stable for x < 2 sqrt(15) / 3:
 #   eta_max = (pi / 2) (2 sqrt 15 / 3) = pi sqrt(15) / 3 = 4.0558.
-# The eigenvalues are -x / (3 sqrt 3) (left eigenvector (1, -4)... no: a mode of R) and
-# mu = -2 x / sqrt 3 + x^2 / sqrt 5, whose left eigenvector is (1, -2): the error's gradient at the
-# teacher, eps ~ (a / 4 sqrt 3)(Q - 2R + const). So mu is the mode the error sees at first order.
+# The eigenvalues are -x / (3 sqrt 3) (right eigenvector (2, 1), along which Q - 2R does not
+# change) and mu = -2 x / sqrt 3 + x^2 / sqrt 5, whose left eigenvector is (1, -2) (check: (1, -2) J =
+# mu (1, -2)), the direction of the error's gradient at the teacher, eps ~ (a / (4 sqrt 3))(Q - 2R)
+# + const. So the error sees mu at first order and the other mode only squared (fixed_points docstring).
 
 SQ3, SQ5 = math.sqrt(3.0), math.sqrt(5.0)
 
