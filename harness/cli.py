@@ -185,6 +185,7 @@ COMMAND_MODULES: list[tuple[str, str]] = [
     ("harness.sweep", "add_sweep_commands"),
     ("harness.scaling", "add_scale_command"),
     ("harness.baselines", "add_baseline_commands"),
+    ("harness.fixed_points_cli", "add_fixed_points_command"),
 ]
 
 
