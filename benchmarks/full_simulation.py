@@ -6,7 +6,7 @@ Scenario: i.i.d. Gaussian inputs, N = 500, K = M = 2, erf, 16 seeds, float32 (is
   samples so that measuring costs nothing), sample-steps per second = steps x seeds /
   ``simulation_s`` (compilation excluded, as the run manifest reports it).
 * (b) ``floor``: drawing the very same inputs and nothing else: the same per-step keys
-  (``fold_in(train_key, step)``, split), the same generator (``harness.threefry``, the
+  (``fold_in(train_key, step)``, split), the same generator (``harness.core.threefry``, the
   bits of ``jax.random.normal``), dtype, block size and split of the seeds across devices,
   summed into a checksum so that nothing is optimised away. Also, for reference, stock
   ``jax.random.normal`` drawing the same count in large calls.
@@ -28,8 +28,10 @@ import numpy as np
 from scipy.special import erf
 
 from benchmarks import Timing, row
-from harness import experiment, simulation, threefry
-from harness import scenario as scenario_lib
+from harness.core import scenario as scenario_lib
+from harness.core import threefry
+from harness.run import experiment
+from harness.sim import simulation
 
 N, K, M, SEEDS = 500, 2, 2, 16
 NAME = "full simulation"

@@ -32,9 +32,12 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import iid_theory, latent_theory, simulation, threefry
-from harness import scenario as scenario_lib
-from harness.paired_theory import initial_state
+from harness.core import scenario as scenario_lib
+from harness.core import threefry
+from harness.sim import simulation
+from harness.theory import iid as iid_theory
+from harness.theory import latent as latent_theory
+from harness.theory.sources import initial_state
 
 N, D, K, M, SEEDS = 1000, 500, 2, 2, 16
 

@@ -23,9 +23,10 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from benchmarks import Timing, load_average, row
-from harness import iid_theory, simulation
-from harness import scenario as scenario_lib
-from harness.paired_theory import initial_state
+from harness.core import scenario as scenario_lib
+from harness.sim import simulation
+from harness.theory import iid as iid_theory
+from harness.theory.sources import initial_state
 
 K, M, SEEDS, ETA, RTOL, ATOL = 2, 2, 16, 0.5, 1e-6, 1e-9
 NAME = "i.i.d. ODE solve"

@@ -25,7 +25,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness.user_data import UserData
+from harness.data.user import UserData
 
 SEPARATION = 1.0
 """|mu| / sqrt(N): the half-distance between the clusters in units of the noise, times sqrt(N)."""

@@ -12,7 +12,7 @@ jax.config.update("jax_enable_x64", True)
 # JAX will not keep a program with a host callback in its persistent compilation cache, so
 # every process would compile the theory's solver again (about 1.5 s of a default run). With
 # "nan" a failed check returns NaN instead of raising, which is what a failed solve already
-# returns here (harness.iid_theory.solve). It must be set before equinox is first imported;
+# returns here (harness.theory.iid.solve). It must be set before equinox is first imported;
 # a value the user set is kept.
 os.environ.setdefault("EQX_ON_ERROR", "nan")
 
@@ -21,7 +21,7 @@ def _host_devices() -> int | None:
     """How many XLA CPU devices to expose; the simulator splits its seeds across them.
 
     One device per core the process may use, so an ensemble's seeds train in parallel
-    (harness.simulation.seed_mesh). ``HARNESS_CPU_DEVICES=n`` chooses n; a process whose
+    (harness.sim.simulation.seed_mesh). ``HARNESS_CPU_DEVICES=n`` chooses n; a process whose
     XLA_FLAGS are set by someone else (e.g. a sweep worker pinned to one thread) keeps
     what those flags say (None: leave JAX's setting alone).
     """

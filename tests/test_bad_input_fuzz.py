@@ -4,7 +4,7 @@ Hypothesis takes valid scenario files and breaks each in exactly one way: an unk
 section, a value of the wrong TOML type, a value outside what the key allows, a section that
 is not a table, a rule between keys broken, malformed TOML, bytes that are not UTF-8, odd
 unicode in names, values and file names. Each file goes through ``harness run FILE --out DIR``
-in this process (harness.cli.main, SystemExit caught) and must give exit status 2, exactly one
+in this process (harness.cli.main.main, SystemExit caught) and must give exit status 2, exactly one
 line on stderr naming the key (or section, or file), no traceback, nothing on stdout and no
 DIR. Validation fails before any JAX work, so an example costs about 40 ms (file, CLI, checks).
 
@@ -27,9 +27,9 @@ import pytest
 from hypothesis import HealthCheck, assume, given, settings
 from hypothesis import strategies as st
 
-from harness.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
-from harness.cli import main
-from harness.scenario import DATA_KINDS, SCHEMA, resolve
+from harness.cli.main import main
+from harness.core.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
+from harness.core.scenario import DATA_KINDS, SCHEMA, resolve
 
 MAX_EXAMPLES = 400  # about 40 ms each (15-20 s); a 3000-example run found nothing more
 

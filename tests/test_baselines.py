@@ -9,10 +9,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import baselines
-from harness.baselines import Tolerance, ToleranceTable, assert_matches_baseline
-from harness.cli import main
-from harness.scenario import load, resolve
+from harness.cli.main import main
+from harness.core.scenario import load, resolve
+from harness.studies import baselines
+from harness.studies.baselines import Tolerance, ToleranceTable, assert_matches_baseline
 
 REPO = Path(__file__).resolve().parents[1]
 COMMITTED = REPO / "results" / "baselines"

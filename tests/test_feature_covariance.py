@@ -1,4 +1,4 @@
-"""Moments of latent-variable inputs (harness/feature_covariance.py).
+"""Moments of latent-variable inputs (harness/data/feature_covariance.py).
 
 The closed forms and the quadrature are held against plain numpy Monte Carlo written
 here independently of the module (own feature maps, own sampling); every Monte Carlo
@@ -15,8 +15,8 @@ import numpy as np
 import pytest
 from scipy.special import erf as scipy_erf
 
-from harness.errors import InputError
-from harness.feature_covariance import (
+from harness.core.errors import InputError
+from harness.data.feature_covariance import (
     deep_generator_apply,
     deep_generator_init,
     deep_generator_moments,
@@ -28,7 +28,7 @@ from harness.feature_covariance import (
 )
 
 # Element-wise maps written with numpy/scipy only, so the references do not share code
-# with harness.activations.
+# with harness.core.activations.
 NUMPY_MAPS = {
     "sign": np.sign,
     "relu": lambda u: np.maximum(u, 0.0),

@@ -20,12 +20,13 @@ import pandas as pd
 import pytest
 from real_results import TINY, real_results, umask
 
-from harness import pipeline, sweep
-from harness import scenario as scenario_lib
-from harness.checkpoint import FILE_NAME as CHECKPOINT_FILE
-from harness.checkpoint import checkpoint_folder
-from harness.cli import main
-from harness.results_store import INDEX_NAME, RUN_FILES, nulls_as_nan, read_index
+from harness.cli.main import main
+from harness.core import scenario as scenario_lib
+from harness.core.files import INDEX_NAME, RUN_FILES, nulls_as_nan, read_index
+from harness.run import pipeline
+from harness.run.checkpoint import FILE_NAME as CHECKPOINT_FILE
+from harness.run.checkpoint import checkpoint_folder
+from harness.studies import sweep
 
 REPO = Path(__file__).resolve().parents[1]
 

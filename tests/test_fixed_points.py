@@ -8,9 +8,11 @@ import math
 import numpy as np
 import pytest
 
-from harness import cli, iid_theory, landmarks
-from harness import fixed_points as fp
-from harness import scenario as sc
+from harness.cli.main import main as cli
+from harness.core import scenario as sc
+from harness.results import landmarks
+from harness.theory import fixed_points as fp
+from harness.theory import iid as iid_theory
 
 # Tight tolerances for trajectories whose error is followed down to 1e-9 (eps is a difference of
 # O(1) Gaussian averages, so it needs the order parameters to ~1e-12). The solver is compiled once

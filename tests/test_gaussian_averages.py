@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from harness.errors import InputError
-from harness.gaussian_averages import (
+from harness.core.errors import InputError
+from harness.theory.gaussian_averages import (
     Averages,
     gaussian_averages,
     generalisation_error,

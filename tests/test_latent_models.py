@@ -10,12 +10,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import comparison, experiment, feature_covariance, latent_models, pipeline
-from harness import scenario as scenario_lib
-from harness.cli import print_run_summary
-from harness.data_models import build_data_model
-from harness.judgement import Margin
-from harness.scenario import ScenarioError
+from harness.cli.main import print_run_summary
+from harness.core import scenario as scenario_lib
+from harness.core.scenario import ScenarioError
+from harness.data import feature_covariance
+from harness.data import latent as latent_models
+from harness.data.model import build_data_model
+from harness.results import comparison
+from harness.results.judgement import Margin
+from harness.run import experiment, pipeline
 
 
 def _scenario(data: dict, **sections) -> dict:
@@ -197,7 +200,7 @@ def test_trained_latent_model_uses_the_stored_generator(tmp_path, monkeypatch):
     # trained_latent: inputs are the stored decoder's images, centred and scaled so that
     # tr(Omega) / N = 1, the latent code c feeds the teacher; Omega and Phi by Monte Carlo
     # (one estimate for every seed), their standard errors reported.
-    from harness import trained_generator
+    from harness.data import trained_generator
 
     monkeypatch.setenv("HARNESS_GENERATORS", str(tmp_path))
     scenario = _scenario({"kind": "trained_latent", "input_dim": 64, "generator": "small", "moment_samples": 20_000},

@@ -9,11 +9,13 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from harness import iid_theory, latent_theory, simulation
-from harness import scenario as scenario_lib
-from harness.errors import InputError
-from harness.paired_theory import initial_state
-from harness.scenario import ScenarioError
+from harness.core import scenario as scenario_lib
+from harness.core.errors import InputError
+from harness.core.scenario import ScenarioError
+from harness.sim import simulation
+from harness.theory import iid as iid_theory
+from harness.theory import latent as latent_theory
+from harness.theory.sources import initial_state
 
 
 def _random_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:

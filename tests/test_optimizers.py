@@ -5,9 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness import experiment, paired_theory
-from harness import scenario as sc
-from harness.optimizers import make_optimizer
+from harness.core import scenario as sc
+from harness.run import experiment
+from harness.sim.optimizers import make_optimizer
+from harness.theory import sources as paired_theory
 
 N = 64
 
@@ -96,7 +97,7 @@ def test_learning_rates_are_state_not_constants_and_the_simulation_is_unchanged(
     import jax.numpy as jnp
     import optax
 
-    from harness import simulation
+    from harness.sim import simulation
 
     extra = {"sgd.momentum": 0.6} if kind == "momentum" else {}
     s = scenario(**{"sgd.optimizer": kind, **extra})

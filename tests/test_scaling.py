@@ -9,9 +9,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import scaling
-from harness.cli import main
-from harness.scenario import load
+from harness.cli.main import main
+from harness.core.scenario import load
+from harness.studies import scaling
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -11,8 +11,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harness import scenario as sc
-from harness.cli import main
+from harness.cli.main import main
+from harness.core import scenario as sc
 
 
 def test_defaults_are_the_documented_ones():

@@ -15,8 +15,8 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.special import erf
 
-from harness import scenario as sc
-from harness import simulation
+from harness.core import scenario as sc
+from harness.sim import simulation
 
 
 def _scenario(**overrides: object) -> dict:

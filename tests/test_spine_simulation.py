@@ -5,11 +5,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness import comparison, simulation
-from harness import scenario as sc
-from harness.experiment import run_experiment, simulate
-from harness.judgement import Margin
-from harness.paired_theory import builtin_iid, initial_state
+from harness.core import scenario as sc
+from harness.results import comparison
+from harness.results.judgement import Margin
+from harness.run.experiment import run_experiment, simulate
+from harness.sim import simulation
+from harness.theory.sources import builtin_iid, initial_state
 
 INNER = 13.78  # measured when written: the band lies 13.8 margins out where it lies furthest
 

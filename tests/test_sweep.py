@@ -18,12 +18,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import scenario as scenario_lib
-from harness import simulation, sweep
-from harness.checkpoint import FILE_NAME
-from harness.cli import main
-from harness.experiment import simulate
-from harness.results_store import (
+from harness.cli.main import main
+from harness.core import scenario as scenario_lib
+from harness.core.files import (
     append_index_row,
     is_abandoned,
     is_complete_run,
@@ -31,6 +28,10 @@ from harness.results_store import (
     remove_index_leftovers,
     staging_folder,
 )
+from harness.run.checkpoint import FILE_NAME
+from harness.run.experiment import simulate
+from harness.sim import simulation
+from harness.studies import sweep
 
 # Tiny points: N = 50, 2 seeds, t = 12, a checkpoint after every evaluation.
 TINY = """
@@ -318,7 +319,7 @@ def test_temporary_names_tell_a_dead_writers_leftovers_from_live_work(tmp_path):
     # A process that creates a temporary file the way the store does and dies without
     # cleaning up: its leftover is abandoned. Our own, another host's, or an unknown name: not.
     code = (
-        "import sys, tempfile; from harness.results_store import _temporary_prefix; "
+        "import sys, tempfile; from harness.core.files import _temporary_prefix; "
         "print(tempfile.mkstemp(prefix=_temporary_prefix('runs.parquet'), suffix='.partial', dir=sys.argv[1])[1])"
     )
     dead = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True, text=True, check=True)

@@ -9,14 +9,17 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import comparison, experiment, iid_theory, judgement, simulation
-from harness import scenario as sc
-from harness.cli import main
-from harness.errors import InputError
-from harness.judgement import Margin
-from harness.paired_theory import InitialState, initial_state, predict
-from harness.trajectories import Trajectories, observable_names
-from harness.user_theory import interpolate_log_time, python_theory, read_theory_file
+from harness.cli.main import main
+from harness.core import scenario as sc
+from harness.core.errors import InputError
+from harness.core.trajectories import Trajectories, observable_names
+from harness.results import comparison, judgement
+from harness.results.judgement import Margin
+from harness.run import experiment
+from harness.sim import simulation
+from harness.theory import iid as iid_theory
+from harness.theory.sources import InitialState, initial_state, predict
+from harness.theory.user import interpolate_log_time, python_theory, read_theory_file
 
 REPO = Path(__file__).resolve().parents[1]
 
