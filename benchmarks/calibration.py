@@ -25,7 +25,8 @@ from harness.core.trajectories import Trajectories
 from harness.results.judgement import Margin, judge
 from harness.run import experiment
 from harness.sim import simulation
-from harness.theory.sources import builtin_iid, initial_state
+from harness.sim.initial import initial_state
+from harness.theory.sources import builtin_iid
 
 SEED_COUNTS = (3, 8, 16, 32, 64)
 ENSEMBLE_SEEDS = 12_800

@@ -25,8 +25,8 @@ from scipy.integrate import solve_ivp
 from benchmarks import Timing, load_average, row
 from harness.core import scenario as scenario_lib
 from harness.sim import simulation
+from harness.sim.initial import initial_state
 from harness.theory import iid as iid_theory
-from harness.theory.sources import initial_state
 
 K, M, SEEDS, ETA, RTOL, ATOL = 2, 2, 16, 0.5, 1e-6, 1e-9
 NAME = "i.i.d. ODE solve"

@@ -22,7 +22,8 @@ from real_results import TINY, real_results, umask
 
 from harness.cli.main import main
 from harness.core import scenario as scenario_lib
-from harness.core.files import INDEX_NAME, RUN_FILES, nulls_as_nan, read_index
+from harness.core.files import nulls_as_nan
+from harness.results.store import INDEX_NAME, RUN_FILES, read_index
 from harness.run import pipeline
 from harness.run.checkpoint import FILE_NAME as CHECKPOINT_FILE
 from harness.run.checkpoint import checkpoint_folder

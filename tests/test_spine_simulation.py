@@ -10,7 +10,8 @@ from harness.results import comparison
 from harness.results.judgement import Margin
 from harness.run.experiment import run_experiment, simulate
 from harness.sim import simulation
-from harness.theory.sources import builtin_iid, initial_state
+from harness.sim.initial import initial_state
+from harness.theory.sources import builtin_iid
 
 INNER = 13.78  # measured when written: the band lies 13.8 margins out where it lies furthest
 

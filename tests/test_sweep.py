@@ -20,14 +20,8 @@ import pytest
 
 from harness.cli.main import main
 from harness.core import scenario as scenario_lib
-from harness.core.files import (
-    append_index_row,
-    is_abandoned,
-    is_complete_run,
-    read_index,
-    remove_index_leftovers,
-    staging_folder,
-)
+from harness.core.files import is_abandoned, staging_folder
+from harness.results.store import append_index_row, is_complete_run, read_index, remove_index_leftovers
 from harness.run.checkpoint import FILE_NAME
 from harness.run.experiment import simulate
 from harness.sim import simulation

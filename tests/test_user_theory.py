@@ -17,8 +17,9 @@ from harness.results import comparison, judgement
 from harness.results.judgement import Margin
 from harness.run import experiment
 from harness.sim import simulation
+from harness.sim.initial import initial_state
 from harness.theory import iid as iid_theory
-from harness.theory.sources import InitialState, initial_state, predict
+from harness.theory.sources import InitialState, predict
 from harness.theory.user import interpolate_log_time, python_theory, read_theory_file
 
 REPO = Path(__file__).resolve().parents[1]

@@ -16,6 +16,7 @@ import warnings
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
+from harness.core.configure import configure
 from harness.core.errors import InputError
 
 DEFAULT_OUT = Path("results")
@@ -204,6 +205,7 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    configure()  # JAX's process-wide options (harness.core.configure), before any computation
     warnings.simplefilter("default")
     warnings.formatwarning = lambda message, category, *rest: f"harness: warning: {message}\n"
     try:

@@ -1,11 +1,9 @@
-"""The results store: run folders and the run index ``runs.parquet``, written atomically.
+"""Files written atomically, and strict JSON: the one way every part of the tool writes.
 
 Nothing here is ever half-written. Single files are written to a temporary name in the
-same folder and moved into place with ``os.replace`` (atomic on POSIX). A run folder is
-assembled under a hidden temporary name and renamed into place only when every file in
-it is complete, so a folder named after a run_id is always a complete run. The index
-``runs.parquet`` is rewritten under an exclusive lock, so concurrent writers (a sweep's
-points finishing together) never lose a row.
+same folder and moved into place with ``os.replace`` (atomic on POSIX). A folder of files
+is assembled under a hidden temporary name (:func:`staging_folder`) and renamed into place
+only when every file in it is complete (:func:`publish_folder`).
 
 Temporary names end in ``.partial`` and carry their writer's host and process id, so that
 a later process can tell the leftovers of a killed writer (:func:`is_abandoned`) from the
@@ -25,7 +23,6 @@ older versions with bare ``NaN`` still load.
 
 from __future__ import annotations
 
-import fcntl
 import io
 import json
 import math
@@ -40,9 +37,6 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
-
-RUN_FILES = ("scenario.toml", "manifest.json", "trajectories.parquet", "summary.parquet", "metrics.parquet")
-INDEX_NAME = "runs.parquet"
 
 
 def _host_tag() -> str:
@@ -175,12 +169,6 @@ def atomic_write_parquet(path: str | Path, frame: pd.DataFrame) -> None:
     atomic_write_bytes(path, buffer.getvalue())
 
 
-def is_complete_run(folder: str | Path) -> bool:
-    """A run folder is complete when it exists under its final name with every file."""
-    folder = Path(folder)
-    return folder.is_dir() and all((folder / name).is_file() for name in RUN_FILES)
-
-
 def publish_folder(staging: Path, final: Path, *, replace: bool) -> None:
     """Move a fully written staging folder to its final name in one rename."""
     if final.exists():
@@ -212,83 +200,3 @@ def staging_folder(out_dir: str | Path, name: str) -> Iterator[Path]:
         raise
 
 
-def write_run_folder(
-    out_dir: str | Path,
-    name: str,
-    *,
-    scenario_toml: str,
-    manifest: dict[str, Any],
-    trajectories: pd.DataFrame,
-    summary: pd.DataFrame,
-    metrics: pd.DataFrame,
-    judgement: dict[str, Any] | None = None,
-    replace: bool = False,
-) -> Path:
-    """Write the files of a run and publish the folder ``out_dir/name`` atomically.
-
-    ``judgement.json`` (the verdict, harness.results.judgement) is derived from the trajectories and
-    can be rewritten later, so it is not one of the :data:`RUN_FILES` that make a run complete.
-    """
-    final = Path(out_dir) / name
-    with staging_folder(out_dir, name) as staging:
-        atomic_write_text(staging / "scenario.toml", scenario_toml)
-        atomic_write_parquet(staging / "trajectories.parquet", trajectories)
-        atomic_write_parquet(staging / "summary.parquet", summary)
-        atomic_write_parquet(staging / "metrics.parquet", metrics)
-        atomic_write_json(staging / "manifest.json", manifest)
-        if judgement is not None:
-            atomic_write_json(staging / "judgement.json", judgement)
-        publish_folder(staging, final, replace=replace)
-    return final
-
-
-@contextmanager
-def _index_lock(out_dir: Path) -> Iterator[None]:
-    out_dir.mkdir(parents=True, exist_ok=True)
-    with open(out_dir / ".runs.lock", "a+") as lock:
-        fcntl.flock(lock, fcntl.LOCK_EX)
-        try:
-            yield
-        finally:
-            fcntl.flock(lock, fcntl.LOCK_UN)
-
-
-def _remove_index_copies(out_dir: Path) -> None:
-    """Delete temporary copies of the index that killed writers left (call with the lock held).
-
-    Every writer of ``runs.parquet`` holds the index lock while its copy exists, and a
-    killed process's lock is released by the kernel; so while we hold the lock, any copy
-    found is a leftover, however young.
-    """
-    for leftover in out_dir.glob(f".{INDEX_NAME}.*.partial"):
-        leftover.unlink(missing_ok=True)
-
-
-def remove_index_leftovers(out_dir: str | Path) -> None:
-    """Delete the index's temporary copies that killed writers left in ``out_dir`` (if it exists)."""
-    out_dir = Path(out_dir)
-    if out_dir.is_dir():
-        with _index_lock(out_dir):
-            _remove_index_copies(out_dir)
-
-
-def append_index_row(out_dir: str | Path, row: dict[str, Any], *, key: str = "run_id") -> None:
-    """Add ``row`` to ``out_dir/runs.parquet``, replacing an earlier row with the same key."""
-    out_dir = Path(out_dir)
-    with _index_lock(out_dir):
-        _remove_index_copies(out_dir)
-        path = out_dir / INDEX_NAME
-        new = pd.DataFrame([row])
-        if path.exists():
-            old = pd.read_parquet(path)
-            if key in old.columns:
-                old = old[old[key] != row[key]]
-            frames = [frame for frame in (old, new) if not frame.empty]
-            new = pd.concat(frames, ignore_index=True) if len(frames) > 1 else frames[0]
-        atomic_write_parquet(path, new)
-
-
-def read_index(out_dir: str | Path) -> pd.DataFrame:
-    """The run index of a results folder (empty if there is none yet)."""
-    path = Path(out_dir) / INDEX_NAME
-    return pd.read_parquet(path) if path.exists() else pd.DataFrame()

@@ -48,33 +48,39 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.core import keys as k
 from harness.core import threefry
 from harness.core.activations import ACTIVATIONS
-from harness.core.scenario import SCHEMA, Scenario, ScenarioError
+from harness.core.keys import Key
+from harness.core.scenario import Scenario, ScenarioError
 from harness.data import feature_covariance
-from harness.data.model import DataModel
+from harness.data.model import DataModel, register_data_kind
 
 Array = jax.Array
 
 LATENT_KINDS: tuple[str, ...] = ("latent", "deep_latent", "trained_latent")
 """Data kinds whose inputs are made from latent Gaussian variables."""
 
-ODD_FEATURE_MAPS: tuple[str, ...] = ("erf", "linear", "sign", "tanh")
-"""Feature maps for which the thermodynamic-limit theory holds (notes, section 4)."""
-
 MOMENT_CACHE_BYTES = 512 * 2**20
 """Upper bound on the float64 moments kept by the cache of expensive moments."""
 
-# Which latent keys mean something for which kind; a key given a non-default value for
-# another kind is an error (a forgotten data.kind would otherwise silently run Gaussian data).
-KEY_KINDS: dict[str, tuple[str, ...]] = {
-    "latent_dim": ("latent", "deep_latent"),
-    "feature_map": ("latent", "deep_latent"),
-    "layers": ("deep_latent",),
-    "layer_activations": ("deep_latent",),
-    "moment_samples": ("deep_latent", "trained_latent"),
-    "generator": ("trained_latent",),
+_SINGLE_OR_DEEP = ("data.kind", ("latent", "deep_latent"))
+KEYS: dict[str, Key] = {
+    "latent_dim": Key("int", 0, "D, latent dimension of latent kinds (0: input_dim // 2)", k.non_negative_int,
+                      only_with=_SINGLE_OR_DEEP),
+    "feature_map": Key("str", "sign", "f in x = f(F^T c / sqrt(D)) - E f (latent kinds)", k.one_of(*ACTIVATIONS),
+                       only_with=_SINGLE_OR_DEEP),
+    "layers": Key("int_list", [], "hidden widths of the deep_latent generator, latent side first", k.positive_list,
+                  only_with=("data.kind", ("deep_latent",))),
+    "layer_activations": Key("str_list", [], "deep_latent: activation after each layer, len(layers) + 1 names "
+                             "(empty: feature_map everywhere)", k.names_from(tuple(ACTIVATIONS)),
+                             only_with=("data.kind", ("deep_latent",))),
+    "moment_samples": Key("int", 100000, "Monte Carlo samples for Omega and Phi (deep_latent, trained_latent)",
+                          k.at_least(1000), only_with=("data.kind", ("deep_latent", "trained_latent"))),
+    "generator": Key("str", "digits", "trained_latent: name of a generator made by 'harness generator train'",
+                     k.non_empty, only_with=("data.kind", ("trained_latent",))),
 }
+"""The [data] keys of the latent kinds, each tied to the kinds it means something for."""
 
 TRAINED_MOMENT_SEED = 0
 """Monte Carlo seed of a trained generator's moments: one estimate for every seed of every run."""
@@ -97,45 +103,25 @@ class LatentParams(NamedTuple):
 
 def latent_dim(scenario: Scenario) -> int:
     """D: ``data.latent_dim``, or N // 2 (at least 1) when it is 0."""
-    chosen = scenario["data"]["latent_dim"]
-    return chosen if chosen > 0 else max(1, scenario["data"]["input_dim"] // 2)
+    chosen = scenario.data.latent_dim
+    return chosen if chosen > 0 else max(1, scenario.data.input_dim // 2)
 
 
 def layer_activations(scenario: Scenario) -> list[str]:
     """One activation per weight layer of a deep generator (len(layers) + 1 of them)."""
-    chosen = scenario["data"]["layer_activations"]
-    return list(chosen) if chosen else [scenario["data"]["feature_map"]] * (len(scenario["data"]["layers"]) + 1)
+    chosen = scenario.data.layer_activations
+    return list(chosen) if chosen else [scenario.data.feature_map] * (len(scenario.data.layers) + 1)
 
 
-def check_latent_keys(s: Scenario) -> None:
-    """Cross-key rules of the latent kinds and of ``theory.limit`` (registered in scenario.EXTRA_CHECKS)."""
-    data, kind = s["data"], s["data"]["kind"]
-    for name, kinds in KEY_KINDS.items():
-        if kind not in kinds and data[name] != SCHEMA["data"][name].default:
-            allowed = " or ".join(repr(k) for k in kinds)
-            raise ScenarioError(f"scenario key 'data.{name}': applies only with data.kind = {allowed}, got {kind!r}")
-    layers = data["layers"]
-    given = data["layer_activations"]
+def check_latent_scenario(s: Scenario) -> None:
+    """What a latent scenario must satisfy beyond its keys' own checks."""
+    layers, given = s.data.layers, s.data.layer_activations
     if given and len(given) != len(layers) + 1:
         raise ScenarioError(
             f"scenario key 'data.layer_activations': needs one name per layer, len(data.layers) + 1 = "
             f"{len(layers) + 1}, or none (data.feature_map everywhere); got {len(given)}"
         )
-    theory = s["theory"]
-    if theory["limit"] == "infinite":
-        if kind != "latent" or data["feature_map"] not in ODD_FEATURE_MAPS:
-            raise ScenarioError(
-                "scenario key 'theory.limit': 'infinite' needs data.kind = 'latent' with an odd feature map ("
-                + ", ".join(ODD_FEATURE_MAPS)
-                + f"); got data.kind = {kind!r}, data.feature_map = {data['feature_map']!r}"
-            )
-    elif theory["bins"] != SCHEMA["theory"]["bins"].default:
-        raise ScenarioError("scenario key 'theory.bins': applies only with theory.limit = 'infinite'")
-    if (
-        kind in LATENT_KINDS
-        and theory["source"] == "builtin"
-        and s["student"]["init_std"] == 0.0
-    ):
+    if s.theory.source == "builtin" and s.student.init_std == 0.0:
         raise ScenarioError(
             "scenario key 'student.init_std': must be > 0 for the built-in latent theory (a student at w = 0 "
             "makes the covariance of (lambda, nu) singular, and the equations need its inverse)"
@@ -268,8 +254,8 @@ def _describer(kind: str) -> Callable[[LatentParams], dict[str, Any]]:
 
 
 def _single_layer(scenario: Scenario, dtype: Any) -> _Generator:
-    n, d = scenario["data"]["input_dim"], latent_dim(scenario)
-    feature_map = scenario["data"]["feature_map"]
+    n, d = scenario.data.input_dim, latent_dim(scenario)
+    feature_map = scenario.data.feature_map
     f = ACTIVATIONS[feature_map].fn
     sqrt_d = math.sqrt(d)
 
@@ -290,10 +276,10 @@ def _single_layer(scenario: Scenario, dtype: Any) -> _Generator:
 
 
 def _deep(scenario: Scenario, dtype: Any) -> _Generator:
-    n, d = scenario["data"]["input_dim"], latent_dim(scenario)
-    widths = [d, *scenario["data"]["layers"], n]
+    n, d = scenario.data.input_dim, latent_dim(scenario)
+    widths = [d, *scenario.data.layers, n]
     names = tuple(layer_activations(scenario))
-    samples = scenario["data"]["moment_samples"]
+    samples = scenario.data.moment_samples
 
     def draw(key: Array) -> tuple[Array, ...]:
         keys = jax.random.split(key, len(widths) - 1)
@@ -319,10 +305,10 @@ def _trained(scenario: Scenario, dtype: Any) -> tuple[_Generator, int]:
     """The stored generator ``data.generator`` (raises a one-line InputError naming the train command)."""
     from harness.data import trained_generator
 
-    n = scenario["data"]["input_dim"]
-    loaded = trained_generator.load_generator(scenario["data"]["generator"], expected={"output_dim": n})
+    n = scenario.data.input_dim
+    loaded = trained_generator.load_generator(scenario.data.generator, expected={"output_dim": n})
     decoder = {"decoder": loaded.params["decoder"]}  # the encoder plays no part in the data
-    samples = scenario["data"]["moment_samples"]
+    samples = scenario.data.moment_samples
 
     def draw(key: Array) -> Any:
         del key  # one fixed generator for every seed
@@ -344,14 +330,14 @@ def _trained(scenario: Scenario, dtype: Any) -> tuple[_Generator, int]:
 
 def build_latent_model(scenario: Scenario, dtype: Any) -> DataModel:
     """The data model of a resolved scenario whose data.kind is one of :data:`LATENT_KINDS`."""
-    kind = scenario["data"]["kind"]
+    kind = scenario.data.kind
     if kind == "trained_latent":
         generator, d = _trained(scenario, dtype)
     elif kind in ("latent", "deep_latent"):
         generator, d = (_single_layer if kind == "latent" else _deep)(scenario, dtype), latent_dim(scenario)
     else:
         raise ValueError(f"build_latent_model: data.kind {kind!r} is not one of {', '.join(LATENT_KINDS)}")
-    return latent_model(kind, scenario["data"]["input_dim"], d, generator, dtype)
+    return latent_model(kind, scenario.data.input_dim, d, generator, dtype)
 
 
 # ------------------------------------------------------------------ eigen-projections
@@ -389,3 +375,7 @@ class SeedProjections(Sequence):
 
 def seed_projections(data_params: LatentParams, student_w: Any, teacher_w: Any) -> SeedProjections:
     return SeedProjections(data_params, np.asarray(student_w), np.asarray(teacher_w))
+
+
+for _kind in LATENT_KINDS:
+    register_data_kind(_kind, build_latent_model, keys=KEYS, check=check_latent_scenario)

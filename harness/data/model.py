@@ -10,8 +10,10 @@ A data model is a pair of pure functions over an explicit per-seed parameter pyt
 * ``order_parameters(params, w, wt) -> (Q, R, T)`` with the notes' definitions
   (section 2), in the dtype of the weights given.
 
-Models are built from a resolved scenario by :func:`build_data_model`; new kinds
-register a builder in :data:`BUILDERS`.
+Models are built from a resolved scenario by :func:`build_data_model`. A data kind declares
+itself in one place with :func:`register_data_kind`: its name (or a prefix such as
+``"python:"``), its builder, the scenario keys it brings and the check its scenarios must
+pass. i.i.d. Gaussian inputs, the kind every other builds on, register below.
 """
 
 from __future__ import annotations
@@ -22,7 +24,8 @@ from typing import Any, NamedTuple
 import jax
 
 from harness.core import threefry
-from harness.core.scenario import Scenario
+from harness.core.keys import Key
+from harness.core.scenario import Scenario, chosen, declare_keys, register_choice
 
 Array = jax.Array
 
@@ -66,34 +69,38 @@ def gaussian_model(input_dim: int, dtype: Any) -> DataModel:
     return DataModel("gaussian", input_dim, input_dim, init, sample, order_parameters)
 
 
-def _build_gaussian(scenario: Scenario, dtype: Any) -> DataModel:
-    return gaussian_model(scenario["data"]["input_dim"], dtype)
+BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {}
+"""Builder of each registered data kind (a key ending in ":" is a prefix such as "python:")."""
 
 
-def _build_user(scenario: Scenario, dtype: Any) -> DataModel:
-    from harness.data.user import build_user_data_model  # lazily: it imports this module
+def register_data_kind(
+    name: str,
+    builder: Callable[[Scenario, Any], DataModel],
+    *,
+    keys: dict[str, Key] | None = None,
+    check: Callable[[Scenario], None] | None = None,
+) -> None:
+    """Make ``data.kind = name`` available: its builder, its ``[data]`` keys, its scenario check.
 
-    return build_user_data_model(scenario, dtype)
-
-
-def _build_latent(scenario: Scenario, dtype: Any) -> DataModel:
-    from harness.data.latent import build_latent_model  # lazily: it imports this module
-
-    return build_latent_model(scenario, dtype)
-
-
-BUILDERS: dict[str, Callable[[Scenario, Any], DataModel]] = {
-    "gaussian": _build_gaussian, "python": _build_user,
-    "latent": _build_latent, "deep_latent": _build_latent, "trained_latent": _build_latent,
-}
+    Args:
+        name: the value of ``data.kind`` (or a prefix ending in ``":"``, e.g. ``"python:"``).
+        builder: ``builder(scenario, dtype) -> DataModel``.
+        keys: scenario keys of the ``[data]`` table this kind brings (declare them with
+            ``only_with=("data.kind", (name, ...))`` so they cannot be set for other kinds).
+        check: run on every resolved scenario that selects this kind (raise ScenarioError).
+    """
+    declare_keys("data", keys or {})
+    register_choice("data.kind", name, check)
+    BUILDERS[name] = builder
 
 
 def build_data_model(scenario: Scenario, dtype: Any) -> DataModel:
     """The data model a resolved scenario names, drawing in ``dtype``."""
-    kind = scenario["data"]["kind"]
-    builder_key = "python" if kind.startswith("python:") else kind
-    try:
-        builder = BUILDERS[builder_key]
-    except KeyError:
-        raise ValueError(f"data kind {kind!r} has no builder; known: {', '.join(BUILDERS)}") from None
+    kind = scenario.data.kind
+    builder = BUILDERS.get(chosen("data.kind", kind) or "")
+    if builder is None:
+        raise ValueError(f"data kind {kind!r} has no builder; known: {', '.join(BUILDERS)}")
     return builder(scenario, dtype)
+
+
+register_data_kind("gaussian", lambda scenario, dtype: gaussian_model(scenario.data.input_dim, dtype))

@@ -17,7 +17,7 @@ scenario (a copy) and the simulation's floating-point type (``jnp.float32`` or
 The sampler must be a pure JAX function (it is traced, vmapped and jit-compiled; use
 ``key`` for every random draw, with explicit dtypes) and may close over a fixed data
 instance (cluster centres, a feature matrix, ...) that the factory draws, e.g. from
-``scenario["run"]["seed"]``. That instance is shared by every seed.
+``scenario.run.seed``. That instance is shared by every seed.
 
 Optionally ``UserData(omega=..., phi=..., latent_cov=...)`` gives Omega = E[x x^T]
 ``[N, N]``, Phi = E[x c^T] ``[N, D]`` and C = E[c c^T] ``[D, D]``, which define the order
@@ -47,8 +47,8 @@ import numpy as np
 
 from harness.core.errors import InputError
 from harness.core.scenario import Scenario, ScenarioError, run_id
-from harness.data.model import DataModel
-from harness.theory.user import load_user_callable
+from harness.core.user_code import describe_error, load_user_callable
+from harness.data.model import DataModel, register_data_kind
 
 Array = jax.Array
 
@@ -72,9 +72,9 @@ class UserData(NamedTuple):
 
 def check_data_kind(scenario: Scenario) -> None:
     """Before any work: the factory imports, and the theory source can work with user data."""
-    kind = scenario["data"]["kind"]
+    kind = scenario.data.kind
     load_user_callable(kind, "data.kind", "factory")
-    if scenario["theory"]["source"] == "builtin":
+    if scenario.theory.source == "builtin":
         raise ScenarioError(
             f"scenario key 'theory.source': there is no built-in theory for data.kind = {kind!r}; "
             "use 'none', 'python:package.module:function' or 'file:PATH'"
@@ -98,13 +98,13 @@ def build_user_data_model(scenario: Scenario, dtype: Any) -> DataModel:
 
 
 def _build(scenario: Scenario, dtype: Any) -> DataModel:
-    kind = scenario["data"]["kind"]
+    kind = scenario.data.kind
     label = f"data factory '{kind[len('python:'):]}'"
     factory = load_user_callable(kind, "data.kind", "factory")
     try:
         made = factory(copy.deepcopy(scenario), dtype)
     except Exception as error:
-        raise InputError(f"{label} raised {_describe(error)}") from None
+        raise InputError(f"{label} raised {describe_error(error)}") from None
     if isinstance(made, UserData):
         data = made
     elif callable(made):
@@ -114,15 +114,10 @@ def _build(scenario: Scenario, dtype: Any) -> DataModel:
             f"{label} returned a {type(made).__name__}, expected harness.data.user.UserData "
             "or a sampler sample(key, n) -> (x, c)"
         )
-    n = scenario["data"]["input_dim"]
+    n = scenario.data.input_dim
     teacher_dim = _check_sampler(data, n, dtype, label)
     omega, phi, latent_cov = _moments(scenario, data, n, teacher_dim, label)
     return _data_model(kind, data, n, teacher_dim, dtype, omega, phi, latent_cov)
-
-
-def _describe(error: BaseException) -> str:
-    lines = str(error).strip().splitlines()
-    return f"{type(error).__name__}: {lines[0]}" if lines else type(error).__name__
 
 
 def _check_sampler(data: UserData, n: int, dtype: Any, label: str) -> int:
@@ -135,7 +130,7 @@ def _check_sampler(data: UserData, n: int, dtype: Any, label: str) -> int:
     try:
         shapes = jax.eval_shape(lambda key: data.sample(key, probe), jax.random.PRNGKey(0))
     except Exception as error:
-        raise InputError(f"{label}: its sampler raised {_describe(error)} for sample(key, {probe})") from None
+        raise InputError(f"{label}: its sampler raised {describe_error(error)} for sample(key, {probe})") from None
     if not (isinstance(shapes, tuple) and len(shapes) == 2 and all(hasattr(a, "shape") for a in shapes)):
         raise InputError(f"{label}: its sampler returned {type(shapes).__name__}, expected {expected}")
     x, second_part = shapes
@@ -186,7 +181,7 @@ def _moments(
     wanted = ("omega",) if data.labels else ("omega", "phi", "latent_cov")
     missing = [name for name in wanted if name not in given]
     if missing:
-        key = jax.random.fold_in(jax.random.PRNGKey(scenario["run"]["seed"]), MOMENT_KEY_INDEX)
+        key = jax.random.fold_in(jax.random.PRNGKey(scenario.run.seed), MOMENT_KEY_INDEX)
         estimated = estimate_moments(data.sample, key, n, d, labels=data.labels)
         for name in missing:
             given[name] = estimated[name]
@@ -261,3 +256,6 @@ def _data_model(
 
     return DataModel(kind, n, d, init, sample, order_parameters, labels_given=labels)
 
+
+
+register_data_kind("python:", build_user_data_model, check=check_data_kind)

@@ -1051,7 +1051,7 @@ def write_run_figures(run_dir: Path, options: FigureOptions = FigureOptions()) -
     divergence = float(test_metrics["divergence_t"].iloc[0]) if len(test_metrics) else None
     verdict = None
     if "group_verdict" in test_metrics and len(test_metrics):
-        from harness.run.pipeline import read_judgement
+        from harness.results.stored import read_judgement
 
         record = read_judgement(run_dir) or {}
         verdict = f"test error: {test_metrics['group_verdict'].iloc[0]}" + (

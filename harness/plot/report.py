@@ -34,7 +34,7 @@ import pandas as pd
 from harness.core.files import atomic_write_text
 from harness.plot import figures
 from harness.results.comparison import describe_gaps
-from harness.run.pipeline import read_judgement
+from harness.results.stored import read_judgement
 
 VERDICTS = ("agree", "disagree", "inconclusive", "n/a")
 OVERVIEW_KEYS = 6

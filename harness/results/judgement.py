@@ -90,6 +90,9 @@ from typing import NamedTuple
 import numpy as np
 from scipy import special
 
+from harness.core import keys as k
+from harness.core.keys import Key
+from harness.core.scenario import declare_keys
 from harness.core.trajectories import observable_group
 
 AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED = "agree", "disagree", "inconclusive", "n/a"
@@ -103,6 +106,18 @@ BOOTSTRAP_RESAMPLES = 2000
 BOOTSTRAP_STREAM = 20_170_501
 """Seed of the bootstrap's random stream: a fixed stream makes verdicts reproducible."""
 MAX_SEEDS_FORECAST = 1_000_000
+
+
+KEYS: dict[str, Key] = {
+    "margin": Key("float", 0.05, "how close is close enough: fraction of an error's value at each time, "
+                  "and of an order-parameter group's largest size", k.positive_finite),
+    "floor": Key("float", 0.001, "an error curve's margin never falls below this fraction of its largest value",
+                 k.non_negative_finite),
+    "alpha": Key("float", 0.05, "error rate of the verdict, joint over every time and observable",
+                 k.open_half_interval),
+}
+"""The [agreement] table: how a run is judged (not part of its run_id, harness.core.scenario)."""
+declare_keys("agreement", KEYS)
 
 
 @dataclass(frozen=True)

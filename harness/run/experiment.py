@@ -23,9 +23,11 @@ from harness.core.scenario import Scenario, run_id
 from harness.core.trajectories import Trajectories, observable_names, stack_observables
 from harness.run.checkpoint import Checkpointer
 from harness.run.compile_clock import CompileClock
-from harness.sim import chain, simulation
+from harness.sim import simulation
+from harness.sim.engines import engine_of
+from harness.sim.initial import initial_state
 from harness.theory import iid as iid_theory
-from harness.theory.sources import InitialState, initial_state, predict
+from harness.theory.sources import InitialState, predict
 
 ProgressFn = Callable[[int, int], None]
 
@@ -58,12 +60,12 @@ def simulate(
     and a matching checkpoint found there is resumed from (:mod:`harness.run.checkpoint`);
     the results are bit-identical either way.
     """
-    # run.engine = "chain" steps the order parameters exactly (harness.sim.chain), same interface.
-    engine = chain if scenario["run"]["engine"] == "chain" else simulation
+    # run.engine: "full" trains the weights, "chain" steps the order parameters exactly; same interface.
+    engine = engine_of(scenario)
     sim = engine.make_simulator(scenario)
-    seeds = np.arange(scenario["run"]["seeds"])
+    seeds = np.arange(scenario.run.seeds)
     steps = simulation.evaluation_steps(scenario)
-    t = steps / scenario["data"]["input_dim"]
+    t = steps / scenario.data.input_dim
 
     started = time.perf_counter()
     instance, state = engine.init_ensemble(sim, seeds)
@@ -78,7 +80,7 @@ def simulate(
     checkpointer, first, resumed_from_step = None, 0, 0
     if checkpoint_dir is not None:
         checkpointer = Checkpointer(
-            checkpoint_dir, 60.0 * scenario["run"]["checkpoint_minutes"], run_id(scenario), steps, instance.train_key
+            checkpoint_dir, 60.0 * scenario.run.checkpoint_minutes, run_id(scenario), steps, instance.train_key
         )
         restored = checkpointer.restore(state, observe.out_info)
         if restored is not None:
@@ -97,13 +99,13 @@ def simulate(
     stacked = jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)  # [S, E, ...]
     dyn = iid_theory.dynamics_of(scenario)
     teacher_v = np.broadcast_to(
-        np.asarray(scenario["teacher"]["second_layer"], np.float64),
-        stacked.v.shape[:2] + (scenario["teacher"]["hidden"],),
+        np.asarray(scenario.teacher.second_layer, np.float64),
+        stacked.v.shape[:2] + (scenario.teacher.hidden,),
     )
     ops = iid_theory.OrderParameters(stacked.Q, stacked.R, stacked.T, stacked.v)
     with np.errstate(invalid="ignore"):
         overlap = np.asarray(iid_theory.overlap_error(dyn, ops, teacher_v))
-    trained = scenario["student"]["train_second_layer"]
+    trained = scenario.student.train_second_layer
     values = stack_observables(
         stacked.test_error, overlap, stacked.Q, stacked.R, stacked.T, stacked.v if trained else None
     )
@@ -136,8 +138,8 @@ def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarra
     into compiling and solving (:class:`~harness.run.compile_clock.CompileClock`).
     """
     sim = simulation.make_simulator(scenario)
-    seeds = np.arange(scenario["run"]["seeds"])
-    t = simulation.evaluation_steps(scenario) / scenario["data"]["input_dim"]
+    seeds = np.arange(scenario.run.seeds)
+    t = simulation.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
     with CompileClock() as clock:
         prediction = predict(scenario, start, t)
@@ -154,10 +156,10 @@ def run_experiment(
     spent.
     """
     sim = simulation.make_simulator(scenario)
-    seeds = np.arange(scenario["run"]["seeds"])
-    if scenario["run"]["engine"] == "full":
+    seeds = np.arange(scenario.run.seeds)
+    if scenario.run.engine == "full":
         simulation.check_test_set_fits(sim, len(seeds))  # before the theory's time is spent
-    times = simulation.evaluation_steps(scenario) / scenario["data"]["input_dim"]
+    times = simulation.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
     with CompileClock() as theory_clock:
         prediction = predict(scenario, start, times)
@@ -187,5 +189,5 @@ def theory_timings(clock: CompileClock) -> dict[str, float]:
 
 def _observables(scenario: Scenario) -> list[str]:
     return observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+        scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )

@@ -19,18 +19,12 @@ import numpy as np
 import pandas as pd
 
 from harness.core import scenario as scenario_lib
-from harness.core.files import (
-    append_index_row,
-    atomic_write_json,
-    atomic_write_parquet,
-    atomic_write_text,
-    is_complete_run,
-    strict_json_value,
-    write_run_folder,
-)
+from harness.core.files import atomic_write_json, atomic_write_parquet, atomic_write_text
 from harness.core.trajectories import Trajectories, from_frame, observable_names
 from harness.results import comparison
 from harness.results.judgement import Margin
+from harness.results.store import append_index_row, is_complete_run, write_run_folder
+from harness.results.stored import divergence_times, judgement_record
 from harness.run.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.run.experiment import ProgressFn, run_experiment, theory_only, theory_timings
 
@@ -67,8 +61,8 @@ def base_manifest(scenario: scenario_lib.Scenario, run_id: str, started: _dt.dat
         "machine": {"platform": platform.platform(), "processor": platform.machine()},
         "jax_backend": jax.default_backend(),
         "jax_device": f"{device.platform}:{device.device_kind}",
-        "dtype": scenario["run"]["dtype"],
-        "seeds": scenario["run"]["seeds"],
+        "dtype": scenario.run.dtype,
+        "seeds": scenario.run.seeds,
     }
 
 
@@ -97,15 +91,6 @@ def index_row(
             row[f"{name}.verdict"] = gap["verdict"]
             row[f"{name}.relative"] = float(gap["relative"])
     return row
-
-
-def judgement_record(comp: comparison.Comparison) -> dict[str, Any]:
-    """What ``judgement.json`` holds: the verdict, its settings and band, the groups and the gaps.
-
-    Non-finite numbers are None, as in the file (strict JSON): a ``seeds_needed`` of None
-    means "no number of seeds would settle it" where the verdict is inconclusive.
-    """
-    return strict_json_value({**comp.judgement.to_dict(), "gaps": comp.gaps})
 
 
 class ComputedRun(NamedTuple):
@@ -220,45 +205,17 @@ def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, fo
     folder = Path(out_dir) / (scenario_lib.run_id(scenario) + "-theory")
     if is_complete_run(folder) and not force:
         return judge_stored_run(folder, scenario, out_dir)
+    return store_run(compute_theory(scenario), out_dir, force=force)
+
+
+def compute_theory(scenario: scenario_lib.Scenario) -> ComputedRun:
+    """Solve the theory alone from the initial conditions a run would draw; nothing is written."""
     started = _dt.datetime.now(_dt.UTC)
     t, start, values, clock = theory_only(scenario)
-    names = observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
-    )
+    names = observable_names(scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer)
     traj = Trajectories(start.seeds, t, names, np.full_like(values, np.nan), values)
     timings = theory_timings(clock) | {"simulation_s": 0.0, "compile_s": 0.0}
-    return store_run(computed_run(scenario, traj, started=started, timings=timings, kind="theory"), out_dir,
-                     force=force)
-
-
-def read_judgement(folder: Path) -> dict[str, Any] | None:
-    """A stored run's judgement.json; for a run stored before it existed, its verdict computed now.
-
-    The verdict is then judged from the stored trajectories with the ``[agreement]`` settings
-    of the stored scenario (defaults where it has none); nothing is written. None when the
-    folder has no trajectories to judge.
-    """
-    path = Path(folder) / "judgement.json"
-    if path.is_file():
-        return json.loads(path.read_text())
-    if not (Path(folder) / "trajectories.parquet").is_file():
-        return None
-    manifest = json.loads((Path(folder) / "manifest.json").read_text())
-    table = scenario_lib.read_table(Path(folder) / "scenario.toml") if (Path(folder) / "scenario.toml").is_file() \
-        else {}
-    margin = Margin.from_scenario(table)
-    traj = from_frame(pd.read_parquet(Path(folder) / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
-    return judgement_record(comparison.compare(traj, margin, _diverged_at(traj, manifest)))
-
-
-def _diverged_at(traj: Trajectories, manifest: dict[str, Any]) -> np.ndarray:
-    """Each seed's divergence time from the manifest (NaN: never diverged)."""
-    diverged_at = np.full(len(traj.seeds), np.nan)
-    seeds = list(traj.seeds)
-    for entry in manifest.get("diverged_seeds", []):
-        if isinstance(entry, dict) and entry.get("seed") in seeds:
-            diverged_at[seeds.index(entry["seed"])] = entry["t"]
-    return diverged_at
+    return computed_run(scenario, traj, started=started, timings=timings, kind="theory")
 
 
 def judge_stored_run(folder: Path, scenario: scenario_lib.Scenario, out_dir: str | Path) -> StoredRun:
@@ -277,7 +234,7 @@ def judge_stored_run(folder: Path, scenario: scenario_lib.Scenario, out_dir: str
         if Margin(record["margin"], record["floor"], record["alpha"]) == margin:
             return StoredRun(folder.name, folder, True, pd.read_parquet(folder / "metrics.parquet"), manifest, record)
     traj = from_frame(pd.read_parquet(folder / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
-    comp = comparison.compare(traj, margin, _diverged_at(traj, manifest))
+    comp = comparison.compare(traj, margin, divergence_times(traj, manifest))
     record = judgement_record(comp)
     atomic_write_parquet(folder / "summary.parquet", comp.summary)
     atomic_write_parquet(folder / "metrics.parquet", comp.metrics)

@@ -64,8 +64,10 @@ import numpy as np
 
 from harness.core import threefry
 from harness.core.activations import get_activation
-from harness.core.scenario import Scenario, ScenarioError
+from harness.core.scenario import Scenario
 from harness.sim import simulation
+from harness.sim.engines import Engine, register_engine
+from harness.sim.initial import initial_state
 from harness.theory import iid as iid_theory
 from harness.theory.gaussian_averages import generalisation_error
 
@@ -94,51 +96,41 @@ class Chain(NamedTuple):
     block_steps: int
 
 
-def check_scenario(s: Scenario) -> None:
-    """Cross-key rules of ``run.engine = "chain"`` (registered in scenario.EXTRA_CHECKS)."""
-    if s["run"]["engine"] != "chain":
-        return
-    if s["data"]["kind"] != "gaussian":
-        raise ScenarioError(
-            f"scenario key 'run.engine': 'chain' needs data.kind = 'gaussian' (i.i.d. inputs), "
-            f"got data.kind = {s['data']['kind']!r}; use run.engine = 'full'"
-        )
-    if s["sgd"]["optimizer"] != "sgd":
-        raise ScenarioError(
-            f"scenario key 'run.engine': 'chain' needs sgd.optimizer = 'sgd', got {s['sgd']['optimizer']!r} "
-            "(its state is not a function of the order parameters); use run.engine = 'full'"
-        )
-    k, m, n = s["student"]["hidden"], s["teacher"]["hidden"], s["data"]["input_dim"]
+def why_not(s: Scenario) -> str | None:
+    """Why the chain cannot run ``s`` (None when it can): it is exact for plain SGD on i.i.d. inputs."""
+    if s.data.kind != "gaussian":
+        return f"needs data.kind = 'gaussian' (i.i.d. inputs), got data.kind = {s.data.kind!r}"
+    if s.sgd.optimizer != "sgd":
+        return (f"needs sgd.optimizer = 'sgd', got {s.sgd.optimizer!r} (its state is not a function of the "
+                "order parameters)")
+    k, m, n = s.student.hidden, s.teacher.hidden, s.data.input_dim
     if n <= k + m:
-        raise ScenarioError(
-            f"scenario key 'run.engine': 'chain' needs data.input_dim > student.hidden + teacher.hidden "
-            f"= {k + m}, got {n}; use run.engine = 'full'"
-        )
+        return f"needs data.input_dim > student.hidden + teacher.hidden = {k + m}, got {n}"
+    return None
 
 
 def default_block_steps(scenario: Scenario) -> int:
     """Steps drawn per block: the chain's draws are small, so long blocks amortise the loop."""
-    chosen = scenario["run"]["block_steps"]
+    chosen = scenario.run.block_steps
     return chosen if chosen > 0 else 256
 
 
 def make_simulator(scenario: Scenario) -> Chain:
     return Chain(
         scenario=scenario,
-        K=scenario["student"]["hidden"],
-        M=scenario["teacher"]["hidden"],
-        N=scenario["data"]["input_dim"],
+        K=scenario.student.hidden,
+        M=scenario.teacher.hidden,
+        N=scenario.data.input_dim,
         block_steps=default_block_steps(scenario),
     )
 
 
 def init_ensemble(chain: Chain, seed_indices: np.ndarray | None = None) -> tuple[ChainInstance, State]:
     """Every seed's initial (Q, R, T, v), exactly those of the full simulation's draws, in float64."""
-    from harness.theory.sources import initial_state  # lazily: it imports the simulation
 
     s = chain.scenario
     if seed_indices is None:
-        seed_indices = np.arange(s["run"]["seeds"])
+        seed_indices = np.arange(s.run.seeds)
     start = initial_state(simulation.make_simulator(s), seed_indices)
     ops = start.order_parameters
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
@@ -227,13 +219,13 @@ def _chain_step(chain: Chain):
     """One seed's exact step of (Q, R, v) (see the module docstring)."""
     s = chain.scenario
     K, N = chain.K, chain.N
-    g = get_activation(s["student"]["activation"])
-    g_teacher = get_activation(s["teacher"]["activation"]).fn
-    eta = s["sgd"]["learning_rate"]
-    eta_v = s["sgd"]["second_layer_learning_rate"]
-    kappa = s["sgd"]["weight_decay"]
-    sigma_noise = s["teacher"]["noise_std"]
-    trained = s["student"]["train_second_layer"]
+    g = get_activation(s.student.activation)
+    g_teacher = get_activation(s.teacher.activation).fn
+    eta = s.sgd.learning_rate
+    eta_v = s.sgd.second_layer_learning_rate
+    kappa = s.sgd.weight_decay
+    sigma_noise = s.teacher.noise_std
+    trained = s.student.train_second_layer
     shrink = 1.0 - eta * kappa / N
     shrink_v = 1.0 - eta_v * kappa / N
 
@@ -293,7 +285,7 @@ def make_advance(chain: Chain):
 def make_observe(chain: Chain):
     """``observe(instance, state) -> simulation.Observation``; test_error is the exact eps_g of (Q, R, T, v)."""
     s = chain.scenario
-    student, teacher = s["student"]["activation"], s["teacher"]["activation"]
+    student, teacher = s.student.activation, s.teacher.activation
 
     def observe_one(instance: ChainInstance, state: State) -> simulation.Observation:
         Q, R, v = state.params["Q"], state.params["R"], state.params["v"]
@@ -308,3 +300,6 @@ def make_observe(chain: Chain):
         return simulation.split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
 
     return jax.jit(observe)
+
+
+register_engine("chain", Engine(make_simulator, init_ensemble, make_advance, make_observe, why_not))

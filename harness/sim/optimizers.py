@@ -32,22 +32,40 @@ theories ignore it; examples/weight_decay_theory.py is a user theory that includ
 
 from __future__ import annotations
 
-import warnings
-
 import optax
 
-from harness.core.scenario import Scenario
+from harness.core import keys as k
+from harness.core.keys import Key
+from harness.core.scenario import Scenario, declare_keys
+
+KEYS: dict[str, Key] = {
+    "optimizer": Key("str", "sgd", "update rule", k.one_of("sgd", "momentum", "adam")),
+    "momentum": Key("float", 0.9, "momentum beta (optimizer 'momentum')", k.unit_interval,
+                    only_with=("sgd.optimizer", ("momentum",))),
+    "nesterov": Key("bool", False, "Nesterov momentum (optimizer 'momentum')",
+                    only_with=("sgd.optimizer", ("momentum",))),
+    "beta1": Key("float", 0.9, "first-moment decay (optimizer 'adam')", k.unit_interval,
+                 only_with=("sgd.optimizer", ("adam",))),
+    "beta2": Key("float", 0.999, "second-moment decay (optimizer 'adam')", k.unit_interval,
+                 only_with=("sgd.optimizer", ("adam",))),
+    "eps": Key("float", 1e-8, "denominator offset (optimizer 'adam')", k.positive_finite,
+               only_with=("sgd.optimizer", ("adam",))),
+    "weight_decay": Key("float", 0.0, "kappa: L2 penalty (kappa/2) sum_k |w_k|^2 / N + (kappa/2) |v|^2",
+                        k.non_negative_finite),
+}
+"""The [sgd] keys of the update rules (plain SGD is what the built-in theories describe)."""
+declare_keys("sgd", KEYS)
 
 
 def make_optimizer(scenario: Scenario) -> optax.GradientTransformation:
     """The scenario's optimizer on ``{"w": ..., "v": ...}`` with the notes' learning-rate scalings."""
-    sgd = scenario["sgd"]
-    n = scenario["data"]["input_dim"]
+    sgd = scenario.sgd
+    n = scenario.data.input_dim
     kappa = sgd["weight_decay"]
     kind = sgd["optimizer"]
     first_rate = sgd["learning_rate"] / n**0.5 if kind == "adam" else sgd["learning_rate"]
     first_layer = _layer_optimizer(sgd, first_rate, kappa / n)
-    if scenario["student"]["train_second_layer"]:
+    if scenario.student.train_second_layer:
         second_layer = _layer_optimizer(sgd, sgd["second_layer_learning_rate"] / n, kappa)
     else:
         second_layer = optax.set_to_zero()
@@ -78,24 +96,3 @@ def _layer_optimizer(sgd: dict, rate: float, decay: float) -> optax.GradientTran
     if decay == 0.0:
         return rule  # the default stays exactly the notes' plain SGD update
     return optax.chain(optax.add_decayed_weights(decay), rule)
-
-
-def is_plain_sgd(scenario: Scenario) -> bool:
-    """True when the simulation runs the notes' update (no momentum, no Adam, no decay)."""
-    return scenario["sgd"]["optimizer"] == "sgd" and scenario["sgd"]["weight_decay"] == 0.0
-
-
-def warn_if_not_plain_sgd(scenario: Scenario, theory: str = "the built-in theory") -> None:
-    """Warn that ``theory`` describes plain SGD when the scenario trains otherwise."""
-    if is_plain_sgd(scenario):
-        return
-    sgd = scenario["sgd"]
-    what = [f"sgd.optimizer = {sgd['optimizer']!r}"] if sgd["optimizer"] != "sgd" else []
-    if sgd["weight_decay"] != 0.0:
-        what.append(f"sgd.weight_decay = {sgd['weight_decay']:g}")
-    warnings.warn(
-        f"{theory} describes plain SGD without weight decay, but the simulation uses "
-        + " and ".join(what) + "; expect them to disagree",
-        UserWarning,
-        stacklevel=3,
-    )

@@ -52,6 +52,7 @@ from harness.core.activations import get_activation
 from harness.core.errors import InputError
 from harness.core.scenario import Scenario
 from harness.data.model import DataModel, build_data_model
+from harness.sim.engines import ENGINES, Engine, register_engine
 from harness.sim.optimizers import make_optimizer
 
 Array = jax.Array
@@ -101,12 +102,12 @@ class Simulator(NamedTuple):
 
 
 def dtype_of(scenario: Scenario) -> Any:
-    return jnp.float64 if scenario["run"]["dtype"] == "float64" else jnp.float32
+    return jnp.float64 if scenario.run.dtype == "float64" else jnp.float32
 
 
 def total_steps(scenario: Scenario) -> int:
     """Number of SGD steps for the scenario's time: round(time * N), at least 1."""
-    return max(1, round(scenario["sgd"]["time"] * scenario["data"]["input_dim"]))
+    return max(1, round(scenario.sgd.time * scenario.data.input_dim))
 
 
 def evaluation_steps(scenario: Scenario) -> np.ndarray:
@@ -117,13 +118,13 @@ def evaluation_steps(scenario: Scenario) -> np.ndarray:
     steps can merge early points; they are then pushed one step apart, and if that
     overshoots the end, fewer evaluations result (never duplicates).
     """
-    n = scenario["data"]["input_dim"]
+    n = scenario.data.input_dim
     end = total_steps(scenario)
-    count = scenario["run"]["evaluations"]
-    if scenario["run"]["spacing"] == "linear":
+    count = scenario.run.evaluations
+    if scenario.run.spacing == "linear":
         steps = np.rint(np.linspace(0, end, count)).astype(np.int64)
     else:
-        first = max(scenario["sgd"]["time"] / 1000.0, 1.0 / n) * n
+        first = max(scenario.sgd.time / 1000.0, 1.0 / n) * n
         grid = np.geomspace(first, end, count - 1) if count > 2 else np.array([end])
         steps = np.concatenate([[0], np.rint(grid).astype(np.int64)])
     steps[-1] = end
@@ -144,14 +145,14 @@ def default_block_steps(scenario: Scenario) -> int:
     block 128 ran twice as fast as block 8), so their blocks are kept near 4 MiB. Large
     inputs get blocks down to a single step, whose draw alone dwarfs the loop's overhead.
     """
-    chosen = scenario["run"]["block_steps"]
+    chosen = scenario.run.block_steps
     if chosen > 0:
         return chosen
-    seeds = scenario["run"]["seeds"]
+    seeds = scenario.run.seeds
     mesh = seed_mesh(seeds)
     per_device = seeds // (1 if mesh is None else mesh.size)
-    itemsize = 8 if scenario["run"]["dtype"] == "float64" else 4
-    data = scenario["data"]
+    itemsize = 8 if scenario.run.dtype == "float64" else 4
+    data = scenario.data
     floats = per_device * max(data["input_dim"], data.get("latent_dim", 0) or 0) * itemsize
     target = (1 << 18) if data["kind"] == "gaussian" else (1 << 22)
     return int(np.clip(2 ** round(math.log2(max(1.0, target / floats))), 1, 256))
@@ -209,14 +210,14 @@ def split_over_seeds(fn: Any, count: int, replicated: int = 0) -> Any:
 
 def student_output(scenario: Scenario, params: dict[str, Array], x: Array) -> Array:
     """f(x) = sum_k v_k g(w_k . x / sqrt(N)) for a batch x of shape [..., N]."""
-    g = get_activation(scenario["student"]["activation"]).fn
+    g = get_activation(scenario.student.activation).fn
     lam = x @ params["w"].T / math.sqrt(x.shape[-1])
     return g(lam) @ params["v"]
 
 
 def teacher_output(scenario: Scenario, w: Array, v: Array, c: Array) -> Array:
     """Clean teacher label sum_m vt_m g~(wt_m . c / sqrt(D)) for a batch c of shape [..., D]."""
-    g = get_activation(scenario["teacher"]["activation"]).fn
+    g = get_activation(scenario.teacher.activation).fn
     nu = c @ w.T / math.sqrt(c.shape[-1])
     return g(nu) @ v
 
@@ -238,7 +239,7 @@ def sample_loss(scenario: Scenario, params: dict[str, Array], x: Array, y: Array
 
 def seed_keys(scenario: Scenario, seed_indices: np.ndarray) -> Array:
     """Each seed's key, ``fold_in(PRNGKey(run.seed), seed)``: ``[S, 2]``."""
-    base = jax.random.PRNGKey(scenario["run"]["seed"])
+    base = jax.random.PRNGKey(scenario.run.seed)
     return threefry.fold_in(base, jnp.asarray(seed_indices, jnp.uint32))
 
 
@@ -247,8 +248,8 @@ def split_seed_key(scenario: Scenario, key: Array) -> dict[str, Array]:
     names = ("teacher", "student", "data", "train", "test")
     split = threefry.split(key, len(names))
     keys = {name: split[..., i, :] for i, name in enumerate(names)}
-    if scenario["run"]["shared_teacher"]:
-        shared = threefry.fold_in(jax.random.PRNGKey(scenario["run"]["seed"]), jnp.uint32(SHARED_KEY_INDEX))
+    if scenario.run.shared_teacher:
+        shared = threefry.fold_in(jax.random.PRNGKey(scenario.run.seed), jnp.uint32(SHARED_KEY_INDEX))
         keys["teacher"], keys["data"] = threefry.split_pair(shared)
     return keys
 
@@ -260,7 +261,7 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     seed axis; this is all the theory needs to start from the same initial conditions.
     """
     s = sim.scenario
-    k, m = s["student"]["hidden"], s["teacher"]["hidden"]
+    k, m = s.student.hidden, s.teacher.hidden
     n, d = sim.model.input_dim, sim.model.teacher_dim
 
     def one(key: Array, teacher_std: Array, student_std: Array) -> tuple[Array, ...]:
@@ -276,8 +277,8 @@ def draw_initial_weights(sim: Simulator, seed_indices: np.ndarray) -> tuple[Arra
     draw = jax.jit(jax.vmap(one, in_axes=(0, None, None)))
     teacher_w, student_w, data_params = draw(seed_keys(s, seed_indices), *stds)
     count = len(seed_indices)
-    teacher_v = jnp.tile(jnp.asarray(s["teacher"]["second_layer"], sim.dtype), (count, 1))
-    student_v = jnp.tile(jnp.asarray(s["student"]["second_layer"], sim.dtype), (count, 1))
+    teacher_v = jnp.tile(jnp.asarray(s.teacher.second_layer, sim.dtype), (count, 1))
+    student_v = jnp.tile(jnp.asarray(s.student.second_layer, sim.dtype), (count, 1))
     return teacher_w, teacher_v, student_w, student_v, data_params
 
 
@@ -304,9 +305,10 @@ def check_test_set_fits(sim: Simulator, seeds: int) -> None:
     the draw would take the machine down with it instead of saying what to change.
     """
     s = sim.scenario
-    needed = seeds * s["run"]["test_samples"] * s["data"]["input_dim"] * jnp.dtype(sim.dtype).itemsize
+    needed = seeds * s.run.test_samples * s.data.input_dim * jnp.dtype(sim.dtype).itemsize
     available = available_memory_bytes()
-    chain_would_do = (s["data"]["kind"], s["sgd"]["optimizer"]) == ("gaussian", "sgd")
+    chain = ENGINES.get("chain")
+    chain_would_do = chain is not None and chain.why_not(s) is None
     if available is not None and needed > 0.8 * available:
         raise InputError(
             f"scenario key 'run.test_samples': the held-out sets need {needed / 2**30:.1f} GiB "
@@ -320,10 +322,10 @@ def init_ensemble(sim: Simulator, seed_indices: np.ndarray | None = None) -> tup
     """Draw every seed's instance (teacher, data model, test set) and initial state."""
     s = sim.scenario
     if seed_indices is None:
-        seed_indices = np.arange(s["run"]["seeds"])
+        seed_indices = np.arange(s.run.seeds)
     check_test_set_fits(sim, len(seed_indices))
     teacher_w, teacher_v, student_w, student_v, data_params = draw_initial_weights(sim, seed_indices)
-    test_samples = s["run"]["test_samples"]
+    test_samples = s.run.test_samples
 
     def test_set(key: Array, tw: Array, tv: Array, params: Any) -> tuple[Array, Array]:
         x, c = sim.model.sample(params, split_seed_key(s, key)["test"], test_samples)
@@ -373,7 +375,7 @@ def draw_block(sim: Simulator, instance: Instance, steps: Array) -> tuple[Array,
     _, noise_keys = threefry.split_pair(jax.vmap(lambda key: step_keys(key, steps))(instance.train_key))
     noise = threefry.normal(noise_keys, (), sim.dtype)
     clean = jax.vmap(lambda w, v, cs: clean_labels(sim, w, v, cs))(instance.teacher_w, instance.teacher_v, c)
-    return x, clean + s["teacher"]["noise_std"] * noise
+    return x, clean + s.teacher.noise_std * noise
 
 
 def draw_steps(sim: Simulator, instance_one: Instance, steps: Array) -> tuple[Array, Array]:
@@ -471,3 +473,6 @@ def make_observe(sim: Simulator):
         return split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
 
     return jax.jit(observe)
+
+
+register_engine("full", Engine(make_simulator, init_ensemble, make_advance, make_observe, lambda scenario: None))

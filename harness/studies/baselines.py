@@ -178,7 +178,7 @@ def read_tolerances(path: Path, observables: Sequence[str]) -> ToleranceTable:
 
 
 def builtin_tolerance(scenario: dict) -> Tolerance:
-    value = TOLERANCE_FACTOR * scenario["theory"]["rtol"]
+    value = TOLERANCE_FACTOR * scenario.theory.rtol
     return Tolerance(value, value)
 
 
@@ -275,7 +275,7 @@ def read_baseline(folder: str | Path) -> Baseline:
     t = np.unique(frame["t"].to_numpy(dtype=np.float64))
     observables = list(dict.fromkeys(frame["observable"]))
     expected = observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+        scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
     if observables != expected:
         raise InputError(
@@ -301,7 +301,7 @@ def read_baseline(folder: str | Path) -> Baseline:
 
 
 def _check_source(scenario: dict, where: str) -> None:
-    source = scenario["theory"]["source"]
+    source = scenario.theory.source
     if source == "none" or source.startswith("file:"):
         raise InputError(
             f"{where}: theory.source = {source!r} solves nothing; a baseline stores a solver's output "
@@ -312,12 +312,13 @@ def _check_source(scenario: dict, where: str) -> None:
 def solve_theory(scenario: dict, start: Any | None = None) -> tuple[np.ndarray, Any, np.ndarray]:
     """``(t, start, values [S, E, O])``: the theory alone, from ``start`` or freshly drawn conditions."""
     from harness.sim import simulation
-    from harness.theory.sources import initial_state, predict
+    from harness.sim.initial import initial_state
+    from harness.theory.sources import predict
 
-    t = simulation.evaluation_steps(scenario) / scenario["data"]["input_dim"]
+    t = simulation.evaluation_steps(scenario) / scenario.data.input_dim
     if start is None:
         sim = simulation.make_simulator(scenario)
-        start = initial_state(sim, np.arange(scenario["run"]["seeds"]))
+        start = initial_state(sim, np.arange(scenario.run.seeds))
     prediction = predict(scenario, start, t)
     return t, start, np.asarray(prediction.values, dtype=np.float64)
 
@@ -370,7 +371,7 @@ def save_baseline(scenario: dict, directory: str | Path, name: str, *, force: bo
     started = _dt.datetime.now(_dt.UTC)
     t, start, values = solve_theory(scenario)
     names = observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+        scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
     if not np.any(np.isfinite(values)):
         raise InputError(f"baseline '{name}': the theory predicted nothing finite; nothing to keep as a reference")
@@ -391,7 +392,7 @@ def save_baseline(scenario: dict, directory: str | Path, name: str, *, force: bo
         "created": started.isoformat(timespec="seconds"),
         "command": sys.argv,
         "packages": package_versions(),
-        "theory_source": scenario["theory"]["source"],
+        "theory_source": scenario.theory.source,
         "seeds": int(s),
         "evaluations": int(e),
     }
@@ -450,13 +451,13 @@ def check_baseline(baseline: Baseline, override: Tolerance | None = None) -> Che
     """Re-solve one baseline from its stored initial conditions and compare."""
 
     from harness.sim import simulation
-    from harness.theory.sources import initial_state
+    from harness.sim.initial import initial_state
 
     problems: list[str] = []
     notes: list[str] = []
     scenario = baseline.scenario
     sim = simulation.make_simulator(scenario)
-    drawn = initial_state(sim, np.arange(scenario["run"]["seeds"]))
+    drawn = initial_state(sim, np.arange(scenario.run.seeds))
     drawn_leaves, treedef = _leaves(drawn)
     shapes_now = [leaf.shape for leaf in drawn_leaves]
     shapes_stored = [leaf.shape for leaf in baseline.start_leaves]

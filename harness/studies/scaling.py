@@ -139,12 +139,13 @@ import hashlib
 import json
 import math
 import sys
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any, NamedTuple
 
 import numpy as np
 
+from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
 from harness.results.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED
 from harness.results.judgement import EXIT_STATUS as VERDICT_EXIT_STATUS
@@ -759,11 +760,12 @@ def parse_sizes(text: str) -> list[int]:
     return sorted(sizes)
 
 
-def scale_id(scenario: dict, sizes: Sequence[int], observable: str, resolution: float, min_exponent: float) -> str:
-    """``scale-<hash>`` of everything the verdict depends on."""
+def scale_id(scenario: Mapping[str, Any], sizes: Sequence[int], observable: str, resolution: float,
+             min_exponent: float) -> str:
+    """``scale-<hash>`` of everything the gaps depend on (the judging sections, like in run_id, are not)."""
     canonical = json.dumps(
-        {"scenario": scenario, "sizes": list(sizes), "observable": observable, "resolution": resolution,
-         "min_exponent": min_exponent},
+        {"scenario": scenario_lib.computed_table(scenario), "sizes": list(sizes), "observable": observable,
+         "resolution": resolution, "min_exponent": min_exponent},
         sort_keys=True, separators=(",", ":"),
     )
     return "scale-" + hashlib.sha256(canonical.encode("utf-8")).hexdigest()[:12]
@@ -773,22 +775,21 @@ def validate(
     scenario: dict, sizes: Sequence[int], observable: str, resolution: float, min_exponent: float = EXPONENT_BOUNDS[0]
 ) -> list[dict]:
     """Every per-size scenario, checked before any work (InputError on bad input)."""
-    from harness.core import scenario as scenario_lib
     from harness.core.trajectories import observable_names
 
     if not (math.isfinite(resolution) and resolution > 0):
         raise InputError(f"--resolution: must be a finite number > 0, got {resolution!r}")
     if not (0 <= min_exponent < EXPONENT_BOUNDS[1]):
         raise InputError(f"--min-exponent: must be a number in [0, {EXPONENT_BOUNDS[1]:g}), got {min_exponent!r}")
-    if scenario["run"]["seeds"] < MIN_SEEDS:
+    if scenario.run.seeds < MIN_SEEDS:
         raise InputError(
             f"scenario key 'run.seeds': scale needs at least {MIN_SEEDS} seeds to measure a gap "
             f"and its error, got {scenario['run']['seeds']}"
         )
-    if scenario["theory"]["source"] == "none":
+    if scenario.theory.source == "none":
         raise InputError("scenario key 'theory.source': scale needs a theory to compare with, got 'none'")
     names = observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+        scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
     if observable not in names:
         raise InputError(f"--observable: must be one of {', '.join(names)}; got {observable!r}")
@@ -810,9 +811,9 @@ def run_scaling(
     """Run (or reuse) every size, measure the gaps, fit, decide, write verdict.json; return it."""
     import pandas as pd
 
-    from harness.core import scenario as scenario_lib
-    from harness.core.files import append_index_row, atomic_write_json
+    from harness.core.files import atomic_write_json
     from harness.core.trajectories import from_frame
+    from harness.results.store import append_index_row
     from harness.run.pipeline import run_and_store
     from harness.run.progress import Progress
 
@@ -899,7 +900,7 @@ def run_scaling(
         "shrink": None if shrink is None else {**shrink._asdict(), "flat": shrink.flat},
         "run_verdicts": run_verdicts,
         "scale_id": identifier,
-        "scenario": scenario,
+        "scenario": scenario_lib.to_dict(scenario),
     }
     atomic_write_json(out_dir / identifier / "verdict.json", verdict)
     row: dict[str, Any] = {"run_id": identifier, "kind": "scale"}
@@ -965,8 +966,6 @@ def format_verdict(verdict: dict[str, Any]) -> str:
 
 
 def _cmd_scale(args: argparse.Namespace) -> int:
-    from harness.core import scenario as scenario_lib
-
     scenario = scenario_lib.load(args.scenario)
     sizes = parse_sizes(args.sizes)
     validate(scenario, sizes, args.observable, args.resolution, args.min_exponent)  # every check before any work

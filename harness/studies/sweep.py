@@ -70,15 +70,8 @@ from typing import Any, NamedTuple, TextIO
 
 from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
-from harness.core.files import (
-    append_index_row,
-    atomic_write_json,
-    is_abandoned,
-    is_complete_run,
-    read_index,
-    read_json,
-    remove_index_leftovers,
-)
+from harness.core.files import atomic_write_json, is_abandoned, read_json
+from harness.results.store import append_index_row, is_complete_run, read_index, remove_index_leftovers
 from harness.run.checkpoint import checkpoint_folder, discard_checkpoint
 
 SWEEP_MODES = ("grid", "zip")
@@ -144,13 +137,13 @@ def parse_sweep_table(table: Any, source: str = "sweep file") -> tuple[str, dict
     for name, value in table.items():
         if name in ("mode", "jobqueue"):
             continue
-        if name in scenario_lib.SCHEMA and isinstance(value, dict):
+        if name in scenario_lib.builtin_schema() and isinstance(value, dict):
             entries = [(f"{name}.{key}", values) for key, values in value.items()]
         else:
             entries = [(name, value)]
         for dotted, values in entries:
             section, _, key = dotted.partition(".")
-            if section not in scenario_lib.SCHEMA or key not in scenario_lib.SCHEMA[section]:
+            if section not in scenario_lib.builtin_schema() or key not in scenario_lib.builtin_schema()[section]:
                 raise SweepError(
                     f"sweep key '{dotted}' in '{source}' is not a scenario key; "
                     "expected 'section.key' such as 'sgd.learning_rate', or 'mode'"
@@ -200,8 +193,8 @@ def _resolve_point(base_table: dict[str, Any], point: dict[str, Any]) -> scenari
         section, _, key = dotted.partition(".")
         table.setdefault(section, {})[key] = value
     scenario = scenario_lib.resolve(table)
-    if not scenario["run"]["common_random_numbers"]:
-        table.setdefault("run", {})["seed"] = independent_seed(scenario["run"]["seed"], point)
+    if not scenario.run.common_random_numbers:
+        table.setdefault("run", {})["seed"] = independent_seed(scenario.run.seed, point)
         scenario = scenario_lib.resolve(table)
     return scenario
 
@@ -216,7 +209,7 @@ def load_sweep(path: str | Path) -> SweepPlan:
         )
     mode, axes, jobqueue = parse_sweep_table(table.pop("sweep"), str(path))
     # A relative theory file is relative to the sweep file, as for scenario files.
-    scenario_lib._anchor_theory_file(table, path.absolute().parent)
+    scenario_lib.anchor_theory_file(table, path.absolute().parent)
     points = expand_points(mode, axes)
     try:
         scenario_lib.resolve(table)

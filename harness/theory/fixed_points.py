@@ -118,10 +118,10 @@ import numpy as np
 
 from harness.core.errors import InputError
 from harness.core.scenario import Scenario
-from harness.sim.optimizers import warn_if_not_plain_sgd
 from harness.theory import iid as iid_theory
 from harness.theory.gaussian_averages import generalisation_error
 from harness.theory.ode_solve import integrate
+from harness.theory.sources import warn_if_not_plain_sgd
 
 Array = jax.Array
 
@@ -658,7 +658,7 @@ def learning_rate_limit(problem: Problem, start: np.ndarray) -> RateLimit:
 
 def scenario_problem(scenario: Scenario) -> tuple[Problem, float]:
     """The flow of a resolved scenario (T = teacher.init_std^2 I) and the student's initial q = init_std^2."""
-    kind = scenario["data"]["kind"]
+    kind = scenario.data.kind
     if kind != "gaussian":
         raise InputError(
             f"scenario key 'data.kind' = {kind!r}: fixed points are computed from the i.i.d. theory "
@@ -666,11 +666,11 @@ def scenario_problem(scenario: Scenario) -> tuple[Problem, float]:
         )
     warn_if_not_plain_sgd(scenario, "the fixed points of the built-in theory")
     dyn = iid_theory.dynamics_of(scenario)
-    M = scenario["teacher"]["hidden"]
-    T = scenario["teacher"]["init_std"] ** 2 * np.eye(M)
-    problem = problem_of(dyn, T, np.asarray(scenario["teacher"]["second_layer"]),
-                         np.asarray(scenario["student"]["second_layer"]))
-    return problem, scenario["student"]["init_std"] ** 2
+    M = scenario.teacher.hidden
+    T = scenario.teacher.init_std ** 2 * np.eye(M)
+    problem = problem_of(dyn, T, np.asarray(scenario.teacher.second_layer),
+                         np.asarray(scenario.student.second_layer))
+    return problem, scenario.student.init_std ** 2
 
 
 def _number(value: float) -> float | None:
@@ -704,7 +704,7 @@ def fixed_points(scenario: Scenario) -> dict[str, Any]:
     """Both fixed points of a scenario's flow and what they predict, as a JSON-ready dict."""
     problem, initial_q = scenario_problem(scenario)
     symmetric = unspecialised_point(problem, initial_q)
-    specialised = specialised_point(problem, initial_q, seed=scenario["run"]["seed"])
+    specialised = specialised_point(problem, initial_q, seed=scenario.run.seed)
     c = problem.constants
     predictions: dict[str, Any] = {
         "plateau_error": None, "escape_rate": None, "plateau_error_exponent": None,

@@ -55,13 +55,13 @@ class Dynamics(NamedTuple):
 
 def dynamics_of(scenario: Scenario, *, second_order: bool = True) -> Dynamics:
     return Dynamics(
-        K=scenario["student"]["hidden"],
-        student=scenario["student"]["activation"],
-        teacher=scenario["teacher"]["activation"],
-        learning_rate=scenario["sgd"]["learning_rate"],
-        second_layer_learning_rate=scenario["sgd"]["second_layer_learning_rate"],
-        train_second_layer=scenario["student"]["train_second_layer"],
-        noise_std=scenario["teacher"]["noise_std"],
+        K=scenario.student.hidden,
+        student=scenario.student.activation,
+        teacher=scenario.teacher.activation,
+        learning_rate=scenario.sgd.learning_rate,
+        second_layer_learning_rate=scenario.sgd.second_layer_learning_rate,
+        train_second_layer=scenario.student.train_second_layer,
+        noise_std=scenario.teacher.noise_std,
         second_order=second_order,
     )
 

@@ -41,12 +41,15 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.core import keys as k
 from harness.core.errors import InputError
-from harness.core.scenario import Scenario
+from harness.core.keys import Key
+from harness.core.scenario import Scenario, ScenarioError, declare_keys, register_check
 from harness.data import feature_covariance
+from harness.data.latent import LATENT_KINDS
 from harness.theory import iid as iid_theory
 from harness.theory.ode_solve import integrate
-from harness.theory.sources import InitialState, Prediction, values_from_order_parameters
+from harness.theory.sources import InitialState, Prediction, register_builtin_theory, values_from_order_parameters
 
 Array = jax.Array
 
@@ -266,8 +269,8 @@ def thermodynamic_spectra(scenario: Scenario, start: InitialState) -> Spectrum:
     """
     n, d = start.student_w.shape[-1], start.teacher_w.shape[-1]
     gamma = n / d
-    kappa1, kappa_star_sq = feature_map_coefficients(scenario["data"]["feature_map"])
-    mu, p = marchenko_pastur_bins(gamma, scenario["theory"]["bins"])
+    kappa1, kappa_star_sq = feature_map_coefficients(scenario.data.feature_map)
+    mu, p = marchenko_pastur_bins(gamma, scenario.theory.bins)
     rho = kappa1**2 * mu + kappa_star_sq
     mean_rho, mean_rho_sq, mean_mu = p @ rho, p @ rho**2, p @ mu
     ops = start.order_parameters
@@ -322,13 +325,40 @@ def builtin_latent(scenario: Scenario, start: InitialState, times: np.ndarray, *
     """Notes section 4, one solve per seed from its own projections (or the thermodynamic limit)."""
     dyn = iid_theory.dynamics_of(scenario, **options)
     check_invertible(start)
-    if scenario["theory"]["limit"] == "infinite":
+    if scenario.theory.limit == "infinite":
         spectra = thermodynamic_spectra(scenario, start)
     else:
         spectra = exact_spectra(start)
     ops, _ = solve_projected(
         dyn, spectra, start.order_parameters, start.teacher_v, times,
-        rtol=scenario["theory"]["rtol"], atol=scenario["theory"]["atol"],
+        rtol=scenario.theory.rtol, atol=scenario.theory.atol,
     )
     _report_failures(start, ops, times)
     return Prediction(values_from_order_parameters(scenario, ops, start.teacher_v), paired=True)
+
+
+ODD_FEATURE_MAPS: tuple[str, ...] = ("erf", "linear", "sign", "tanh")
+"""Feature maps for which the thermodynamic-limit theory holds (docs/equations.md, section 5)."""
+
+KEYS: dict[str, Key] = {
+    "limit": Key("str", "finite", "latent theory: exact finite-N equations or the thermodynamic limit",
+                 k.one_of("finite", "infinite")),
+    "bins": Key("int", 200, "eigenvalue bins of the thermodynamic-limit latent theory", k.at_least(2),
+                only_with=("theory.limit", ("infinite",))),
+}
+
+
+def check_limit(s: Scenario) -> None:
+    """``theory.limit = "infinite"`` needs the single-layer model with an odd feature map."""
+    if s.theory.limit == "infinite" and (s.data.kind != "latent" or s.data.feature_map not in ODD_FEATURE_MAPS):
+        raise ScenarioError(
+            "scenario key 'theory.limit': 'infinite' needs data.kind = 'latent' with an odd feature map ("
+            + ", ".join(ODD_FEATURE_MAPS)
+            + f"); got data.kind = {s.data.kind!r}, data.feature_map = {s.data.feature_map!r}"
+        )
+
+
+declare_keys("theory", KEYS)
+register_check(check_limit)
+for _kind in LATENT_KINDS:
+    register_builtin_theory(_kind, builtin_latent)

@@ -1,28 +1,28 @@
 """Theory predictions started from each seed's own initial conditions.
 
-The simulation draws each seed's teacher and initial student; :func:`initial_state`
-turns those weights into the exact initial order parameters, computed in float64, and
+The simulation draws each seed's teacher and initial student and turns those weights into
+the exact initial order parameters (harness.sim.initial, an :class:`InitialState`);
 :func:`predict` hands them to the theory the scenario names (``theory.source``). Every
 theory returns values in the :mod:`harness.core.trajectories` layout ``[S, E, O]``, NaN for
 observables it does not predict.
 
-Theory sources register in :data:`SOURCES` by prefix (``builtin``, and later
-``python:`` and ``file:``); built-in theories register per data kind in
-:data:`BUILTIN_THEORIES`.
+A theory source declares itself in one place with :func:`register_source` (``builtin`` and
+``none`` here; ``python:`` and ``file:`` in harness.theory.user); the built-in theory of
+each data kind with :func:`register_builtin_theory` (i.i.d. inputs here, the latent kinds
+in harness.theory.latent).
 """
 
 from __future__ import annotations
 
+import warnings
 from collections.abc import Callable
 from typing import Any, NamedTuple
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 
-from harness.core.scenario import Scenario
+from harness.core.keys import Key
+from harness.core.scenario import Scenario, ScenarioError, chosen, declare_keys, register_choice
 from harness.core.trajectories import observable_names, stack_observables
-from harness.sim.optimizers import warn_if_not_plain_sgd
 from harness.theory import iid as iid_theory
 
 Array = Any
@@ -47,26 +47,6 @@ class Prediction(NamedTuple):
     paired: bool  # False: one mean curve repeated for every seed
 
 
-def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:
-    """Draw the seeds' initial weights exactly as the simulation does; overlaps in float64."""
-    from harness.sim.simulation import draw_initial_weights
-
-    teacher_w, teacher_v, student_w, student_v, data_params = draw_initial_weights(sim, seed_indices)
-    w64 = jnp.asarray(student_w, jnp.float64)
-    wt64 = jnp.asarray(teacher_w, jnp.float64)
-    # One compiled program for every seed (a Python loop of eager calls cost ~2 ms a seed).
-    Q, R, T = jax.jit(jax.vmap(sim.model.order_parameters))(data_params, w64, wt64)
-    ops = iid_theory.OrderParameters(
-        np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(student_v, np.float64)
-    )
-    spectra = sim.model.spectra
-    return InitialState(
-        np.asarray(seed_indices), ops, np.asarray(teacher_v, np.float64),
-        np.asarray(wt64), np.asarray(w64), data_params,
-        None if spectra is None else spectra(data_params, np.asarray(w64), np.asarray(wt64)),
-    )
-
-
 def values_from_order_parameters(
     scenario: Scenario, ops: iid_theory.OrderParameters, teacher_v: np.ndarray
 ) -> np.ndarray:
@@ -78,7 +58,7 @@ def values_from_order_parameters(
     e = ops.Q.shape[1]
     vt = np.broadcast_to(teacher_v[:, None, :], (teacher_v.shape[0], e, teacher_v.shape[1]))
     eps = np.asarray(iid_theory.overlap_error(dyn, ops, vt))
-    trained = scenario["student"]["train_second_layer"]
+    trained = scenario.student.train_second_layer
     return stack_observables(eps, eps, ops.Q, ops.R, ops.T, ops.v if trained else None)
 
 
@@ -87,28 +67,69 @@ def builtin_iid(scenario: Scenario, start: InitialState, times: np.ndarray, **op
     dyn = iid_theory.dynamics_of(scenario, **options)
     ops = iid_theory.solve(
         dyn, start.order_parameters, start.teacher_v, times,
-        rtol=scenario["theory"]["rtol"], atol=scenario["theory"]["atol"],
+        rtol=scenario.theory.rtol, atol=scenario.theory.atol,
     )
     ops = iid_theory.OrderParameters(*(np.asarray(x) for x in ops))
     return Prediction(values_from_order_parameters(scenario, ops, start.teacher_v), paired=True)
 
 
 TheoryFn = Callable[..., Prediction]
+"""``theory(scenario, start, times) -> Prediction``."""
 
-def _builtin_latent(scenario: Scenario, start: InitialState, times: np.ndarray, **options: Any) -> Prediction:
-    from harness.theory.latent import builtin_latent  # lazily: it imports this module
+SOURCES: dict[str, TheoryFn] = {}
+"""Every registered ``theory.source`` (a key ending in ":" is a prefix: "python:", "file:")."""
+BUILTIN_THEORIES: dict[str, TheoryFn] = {}
+"""The built-in theory of each data kind (``theory.source = "builtin"``)."""
 
-    return builtin_latent(scenario, start, times, **options)
+
+def register_source(
+    name: str,
+    theory: TheoryFn,
+    *,
+    keys: dict[str, Key] | None = None,
+    check: Callable[[Scenario], None] | None = None,
+) -> None:
+    """Make ``theory.source = name`` available (a name ending in ":" is a prefix, e.g. "file:").
+
+    Args:
+        name: the value of ``theory.source``.
+        theory: ``theory(scenario, start, times) -> Prediction``.
+        keys: ``[theory]`` keys this source brings.
+        check: run on every resolved scenario that selects this source (raise ScenarioError).
+    """
+    declare_keys("theory", keys or {})
+    register_choice("theory.source", name, check)
+    SOURCES[name] = theory
 
 
-BUILTIN_THEORIES: dict[str, TheoryFn] = {
-    "gaussian": builtin_iid, "latent": _builtin_latent, "deep_latent": _builtin_latent,
-    "trained_latent": _builtin_latent,
-}
+def register_builtin_theory(data_kind: str, theory: TheoryFn) -> None:
+    """The theory ``theory.source = "builtin"`` uses for ``data.kind = data_kind``."""
+    BUILTIN_THEORIES[data_kind] = theory
+
+
+def is_plain_sgd(scenario: Scenario) -> bool:
+    """True when the simulation runs the plain SGD update the built-in theories describe."""
+    return scenario.sgd.optimizer == "sgd" and scenario.sgd.weight_decay == 0.0
+
+
+def warn_if_not_plain_sgd(scenario: Scenario, theory: str = "the built-in theory") -> None:
+    """Warn that ``theory`` describes plain SGD when the scenario trains otherwise."""
+    if is_plain_sgd(scenario):
+        return
+    sgd = scenario.sgd
+    what = [f"sgd.optimizer = {sgd.optimizer!r}"] if sgd.optimizer != "sgd" else []
+    if sgd.weight_decay != 0.0:
+        what.append(f"sgd.weight_decay = {sgd.weight_decay:g}")
+    warnings.warn(
+        f"{theory} describes plain SGD (no momentum, no Adam, no weight decay), but the simulation uses "
+        + " and ".join(what) + "; expect them to disagree",
+        UserWarning,
+        stacklevel=3,
+    )
 
 
 def _builtin(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
-    kind = scenario["data"]["kind"]
+    kind = scenario.data.kind
     warn_if_not_plain_sgd(scenario)
     if kind not in BUILTIN_THEORIES:
         raise ValueError(
@@ -120,24 +141,28 @@ def _builtin(scenario: Scenario, start: InitialState, times: np.ndarray) -> Pred
 
 def _no_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
     s = len(start.seeds)
-    k, m = scenario["student"]["hidden"], scenario["teacher"]["hidden"]
-    o = len(observable_names(k, m, scenario["student"]["train_second_layer"]))
+    o = len(observable_names(scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer))
     return Prediction(np.full((s, len(times), o), np.nan), paired=True)
 
 
-def _user_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
-    from harness.theory.user import predict_user  # lazily: user theories import this module
+def _builtin_exists(scenario: Scenario) -> None:
+    if scenario.data.kind.startswith("python:") or chosen("data.kind", scenario.data.kind) in BUILTIN_THEORIES:
+        return  # a user data kind says for itself which sources work with it
+    raise ScenarioError(
+        f"scenario key 'theory.source': 'builtin' has no theory for data.kind = {scenario.data.kind!r}; "
+        f"built-in theories exist for: {', '.join(BUILTIN_THEORIES)}"
+    )
 
-    return predict_user(scenario, start, times)
 
-
-SOURCES: dict[str, TheoryFn] = {"builtin": _builtin, "none": _no_theory, "python": _user_theory, "file": _user_theory}
+register_source("builtin", _builtin, check=_builtin_exists)
+register_source("none", _no_theory)
+register_builtin_theory("gaussian", builtin_iid)
 
 
 def predict(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
     """Ask the scenario's theory source for predictions at ``times``."""
-    source = scenario["theory"]["source"]
-    prefix = source.split(":", 1)[0] if ":" in source else source
-    if prefix not in SOURCES:
+    source = scenario.theory.source
+    theory = SOURCES.get(chosen("theory.source", source) or "")
+    if theory is None:
         raise ValueError(f"theory.source {source!r} is not available; known: {', '.join(SOURCES)}")
-    return SOURCES[prefix](scenario, start, times)
+    return theory(scenario, start, times)

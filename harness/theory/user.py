@@ -52,10 +52,6 @@ resolved (import, callable, readable well-formed file) so that nothing runs in v
 
 from __future__ import annotations
 
-import copy
-import importlib
-import os
-import sys
 from collections.abc import Callable, Mapping
 from pathlib import Path
 from typing import Any
@@ -67,7 +63,8 @@ from scipy.interpolate import PchipInterpolator
 from harness.core.errors import InputError
 from harness.core.scenario import Scenario, ScenarioError
 from harness.core.trajectories import observable_names
-from harness.theory.sources import InitialState, Prediction
+from harness.core.user_code import describe_error, load_user_callable
+from harness.theory.sources import InitialState, Prediction, register_source
 
 FILE_SUFFIXES = {".csv": "CSV", ".parquet": "Parquet", ".pq": "Parquet"}
 TIME_TOLERANCE = 1e-9
@@ -77,75 +74,42 @@ TIME_TOLERANCE = 1e-9
 # ------------------------------------------------------------------ user Python code
 
 
-def split_python_target(spec: str, key: str, what: str) -> tuple[str, str]:
-    """``"python:package.module:name"`` -> ``("package.module", "name")``, or a one-line error."""
-    body = spec[len("python:"):] if spec.startswith("python:") else spec
-    module, sep, name = body.rpartition(":")
-    if not sep or not module or not name or not name.isidentifier() or not all(
-        part.isidentifier() for part in module.split(".")
-    ):
-        raise ScenarioError(f"scenario key '{key}': expected 'python:package.module:{what}', got {spec!r}")
-    return module, name
-
-
-def load_user_callable(spec: str, key: str, what: str) -> Callable[..., Any]:
-    """Import the callable a ``python:package.module:name`` spec names (one-line errors)."""
-    module_name, name = split_python_target(spec, key, what)
-    cwd = os.getcwd()
-    if cwd not in sys.path and "" not in sys.path:
-        sys.path.append(cwd)  # after the installed packages: a local file never shadows one
-    try:
-        module = importlib.import_module(module_name)
-    except ModuleNotFoundError as error:
-        raise ScenarioError(
-            f"scenario key '{key}': cannot import module '{module_name}' ({error}); "
-            "it must be installed or importable from the working directory"
-        ) from None
-    except Exception as error:  # the user's module raised while being imported
-        raise ScenarioError(
-            f"scenario key '{key}': importing module '{module_name}' raised {_describe(error)}"
-        ) from None
-    target = getattr(module, name, None)
-    if target is None:
-        raise ScenarioError(f"scenario key '{key}': module '{module_name}' has no {what} '{name}'")
-    if not callable(target):
-        raise ScenarioError(
-            f"scenario key '{key}': '{module_name}.{name}' is a {type(target).__name__}, expected a {what}"
-        )
-    return target
-
-
-def _describe(error: BaseException) -> str:
-    """``ValueError: first line of the message`` for one-line reports of user exceptions."""
-    text = str(error).strip().splitlines()
-    return f"{type(error).__name__}: {text[0]}" if text else type(error).__name__
-
-
 def describe_observables(scenario: Scenario) -> str:
     """The observable names of a scenario as patterns with index ranges, for error messages."""
-    k, m = scenario["student"]["hidden"], scenario["teacher"]["hidden"]
+    k, m = scenario.student.hidden, scenario.teacher.hidden
     text = f"test_error, overlap_error, Q[i,j] (i,j < {k}), R[i,m] (i < {k}, m < {m}), T[m,n] (m,n < {m})"
-    if scenario["student"]["train_second_layer"]:
+    if scenario.student.train_second_layer:
         text += f", v[k] (k < {k})"
     return text
 
 
 def _names_of(scenario: Scenario) -> list[str]:
     return observable_names(
-        scenario["student"]["hidden"], scenario["teacher"]["hidden"], scenario["student"]["train_second_layer"]
+        scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
 
 
 def python_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
-    """Call the user's theory function and arrange its answer as a :class:`Prediction`."""
-    spec = scenario["theory"]["source"]
+    """Call the user's theory function named by ``theory.source`` and arrange its answer."""
+    spec = scenario.theory.source
     function = load_user_callable(spec, "theory.source", "function")
-    label = f"theory function '{spec[len('python:'):]}'"
+    return call_theory(function, scenario, start, times, f"theory function '{spec[len('python:'):]}'")
+
+
+def call_theory(function: Callable[..., Any], scenario: Scenario, start: InitialState, times: np.ndarray,
+                label: str) -> Prediction:
+    """Call a theory function ``function(scenario, start, times)`` and lay out its answer.
+
+    The answer is a :class:`Prediction` or a mapping ``{observable: [S, E] or [E]}``
+    (:func:`arrange_prediction`); an exception it raises becomes a one-line InputError.
+    """
     times = np.array(times, dtype=np.float64)
     try:
-        answer = function(copy.deepcopy(scenario), start, times.copy())
+        answer = function(scenario, start, times.copy())
     except Exception as error:
-        raise InputError(f"{label} raised {_describe(error)}") from None
+        raise InputError(f"{label} raised {describe_error(error)}") from None
+    if isinstance(answer, Prediction):
+        return answer
     return arrange_prediction(scenario, answer, len(start.seeds), times, label)
 
 
@@ -198,7 +162,7 @@ def arrange_prediction(
 
 def file_path(scenario: Scenario) -> Path:
     """The path a ``file:PATH`` source names (relative paths: the working directory)."""
-    return Path(scenario["theory"]["source"][len("file:"):])
+    return Path(scenario.theory.source[len("file:"):])
 
 
 def read_theory_file(path: Path, scenario: Scenario) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -220,7 +184,7 @@ def read_theory_file(path: Path, scenario: Scenario) -> tuple[np.ndarray, dict[s
     try:
         table = pd.read_csv(path) if suffix == ".csv" else pd.read_parquet(path)
     except Exception as error:  # pandas / pyarrow raise many types for malformed files
-        raise InputError(f"{where} cannot be read as {FILE_SUFFIXES[suffix]}: {_describe(error)}") from None
+        raise InputError(f"{where} cannot be read as {FILE_SUFFIXES[suffix]}: {describe_error(error)}") from None
     columns = [str(c).strip() for c in table.columns]
     table.columns = columns
     if "t" not in columns:
@@ -273,7 +237,7 @@ def read_theory_file(path: Path, scenario: Scenario) -> tuple[np.ndarray, dict[s
 def _final_time(scenario: Scenario) -> float:
     from harness.sim.simulation import total_steps
 
-    return total_steps(scenario) / scenario["data"]["input_dim"]
+    return total_steps(scenario) / scenario.data.input_dim
 
 
 def interpolate_log_time(t: np.ndarray, values: np.ndarray, times: np.ndarray) -> np.ndarray:
@@ -312,26 +276,34 @@ def file_theory(scenario: Scenario, start: InitialState, times: np.ndarray) -> P
 # -------------------------------------------------------------------- entry points
 
 
-def predict_user(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:
-    """The ``python:`` and ``file:`` theory sources (registered in paired_theory.SOURCES)."""
-    source = scenario["theory"]["source"]
-    if source.startswith("python:"):
-        return python_theory(scenario, start, times)
-    if source.startswith("file:"):
-        return file_theory(scenario, start, times)
-    raise AssertionError(source)
+def check_python_source(scenario: Scenario) -> None:
+    """Before any work: the ``python:`` theory function imports."""
+    load_user_callable(scenario.theory.source, "theory.source", "function")
 
 
-def check_theory_source(scenario: Scenario) -> None:
-    """Validate a ``python:`` or ``file:`` source before any work (called by scenario.resolve)."""
-    source = scenario["theory"]["source"]
-    if source.startswith("python:"):
-        load_user_callable(source, "theory.source", "function")
-    elif source.startswith("file:"):
-        if not source[len("file:"):].strip():
-            raise ScenarioError("scenario key 'theory.source': expected 'file:PATH' with a path, got 'file:'")
-        try:
-            read_theory_file(file_path(scenario), scenario)
-        except InputError as error:
-            raise ScenarioError(f"scenario key 'theory.source': {error}") from None
+def check_file_source(scenario: Scenario) -> None:
+    """Before any work: the ``file:`` theory can be read and covers the run's times."""
+    if not scenario.theory.source[len("file:"):].strip():
+        raise ScenarioError("scenario key 'theory.source': expected 'file:PATH' with a path, got 'file:'")
+    try:
+        read_theory_file(file_path(scenario), scenario)
+    except InputError as error:
+        raise ScenarioError(f"scenario key 'theory.source': {error}") from None
 
+
+def register_theory(name: str, theory: Callable[..., Any]) -> None:
+    """Make a theory function available as ``theory.source = name``.
+
+    Args:
+        name: the name scenarios use (not "builtin", "none", or one starting "python:" / "file:").
+        theory: ``theory(scenario, start, times)`` returning a ``{observable: [S, E] or [E]}``
+            mapping or a :class:`~harness.theory.sources.Prediction` (as a ``python:`` theory).
+    """
+    if name in ("builtin", "none") or ":" in name or not name.strip():
+        raise ValueError(f"theory name {name!r}: must be a plain name, not 'builtin', 'none' or contain ':'")
+    register_source(name, lambda scenario, start, times: call_theory(theory, scenario, start, times,
+                                                                      f"theory '{name}'"))
+
+
+register_source("python:", python_theory, check=check_python_source)
+register_source("file:", file_theory, check=check_file_source)
