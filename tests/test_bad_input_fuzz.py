@@ -180,7 +180,8 @@ UNIT_INTERVAL = st.one_of(not_finite_or(below=0.0), st.floats(min_value=1.0))  #
 
 # Values outside what each key allows, from the documented rules.
 OUT_OF_RANGE: dict[tuple[str, str], st.SearchStrategy] = {
-    ("data", "kind"): not_in([c for c in choices("data.kind") if not c.endswith(":")]).filter(lambda text: not text.startswith("python:")),
+    ("data", "kind"): not_in([c for c in choices("data.kind") if not c.endswith(":")]).filter(
+        lambda text: not text.startswith("python:")),
     ("data", "input_dim"): st.integers(max_value=0),
     ("data", "latent_dim"): st.integers(max_value=-1),
     ("data", "feature_map"): not_in(ACTIVATIONS),

@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from harness.core import scenario as scenario_lib
+from harness.core import times as time_grid
 from harness.core.errors import InputError
 from harness.core.scenario import ScenarioError
 from harness.sim import simulation
@@ -150,7 +151,7 @@ def test_thermodynamic_limit_agrees_with_the_finite_solve_at_large_N():
         "run": {"seeds": 1, "evaluations": 12, "spacing": "linear"},
     })
     start = initial_state(simulation.make_simulator(scenario), np.arange(1))
-    times = simulation.evaluation_steps(scenario) / 2000
+    times = time_grid.evaluation_steps(scenario) / 2000
     finite = latent_theory.builtin_latent(scenario, start, times).values[..., 0]
     infinite_scenario = scenario_lib.with_overrides(scenario, {"theory.limit": "infinite"})
     infinite = latent_theory.builtin_latent(infinite_scenario, start, times).values[..., 0]

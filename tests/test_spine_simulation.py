@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 
 from harness.core import scenario as sc
+from harness.core import times as time_grid
 from harness.results import comparison
 from harness.results.judgement import Margin
 from harness.run.experiment import run_experiment, simulate
@@ -125,7 +126,7 @@ def test_runs_are_bit_identical_and_seeds_differ():
 
 def test_evaluation_times_include_zero_and_the_end():
     s = sc.resolve({"data": {"input_dim": 100}, "sgd": {"time": 50.0}, "run": {"evaluations": 30}})
-    steps = simulation.evaluation_steps(s)
+    steps = time_grid.evaluation_steps(s)
     assert steps[0] == 0 and steps[-1] == 5000 and np.all(np.diff(steps) > 0) and len(steps) == 30
-    lin = simulation.evaluation_steps(sc.with_overrides(s, {"run.spacing": "linear"}))
+    lin = time_grid.evaluation_steps(sc.with_overrides(s, {"run.spacing": "linear"}))
     assert np.allclose(np.diff(lin), 5000 / 29, atol=1)

@@ -19,6 +19,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.core import times as time_grid
 from harness.core.scenario import Scenario, run_id
 from harness.core.trajectories import Trajectories, observable_names, stack_observables
 from harness.run.checkpoint import Checkpointer
@@ -64,7 +65,7 @@ def simulate(
     engine = engine_of(scenario)
     sim = engine.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)
-    steps = simulation.evaluation_steps(scenario)
+    steps = time_grid.evaluation_steps(scenario)
     t = steps / scenario.data.input_dim
 
     started = time.perf_counter()
@@ -139,7 +140,7 @@ def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarra
     """
     sim = simulation.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)
-    t = simulation.evaluation_steps(scenario) / scenario.data.input_dim
+    t = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
     with CompileClock() as clock:
         prediction = predict(scenario, start, t)
@@ -159,7 +160,7 @@ def run_experiment(
     seeds = np.arange(scenario.run.seeds)
     if scenario.run.engine == "full":
         simulation.check_test_set_fits(sim, len(seeds))  # before the theory's time is spent
-    times = simulation.evaluation_steps(scenario) / scenario.data.input_dim
+    times = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
     with CompileClock() as theory_clock:
         prediction = predict(scenario, start, times)

@@ -55,6 +55,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from harness.core import times as time_grid
 from harness.core.errors import InputError
 
 DEFAULT_DIR = Path("results") / "baselines"
@@ -315,7 +316,7 @@ def solve_theory(scenario: dict, start: Any | None = None) -> tuple[np.ndarray, 
     from harness.sim.initial import initial_state
     from harness.theory.sources import predict
 
-    t = simulation.evaluation_steps(scenario) / scenario.data.input_dim
+    t = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     if start is None:
         sim = simulation.make_simulator(scenario)
         start = initial_state(sim, np.arange(scenario.run.seeds))

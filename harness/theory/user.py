@@ -235,7 +235,7 @@ def read_theory_file(path: Path, scenario: Scenario) -> tuple[np.ndarray, dict[s
 
 
 def _final_time(scenario: Scenario) -> float:
-    from harness.sim.simulation import total_steps
+    from harness.core.times import total_steps
 
     return total_steps(scenario) / scenario.data.input_dim
 
