@@ -112,7 +112,7 @@ def stock_normal_rate(samples: int, n: int = N) -> Timing:
 
 
 def numpy_loop(steps: int, seeds: int = 2, n: int = N, eta: float = 0.5) -> Callable[[], None]:
-    """Plain per-sample online SGD in NumPy (notes, section 1), seed after seed: the loop to time."""
+    """Plain per-sample online SGD in NumPy (docs/equations.md, section 1), seed after seed: the loop to time."""
     rng = np.random.default_rng(0)
     sqrt_n, root2, slope = math.sqrt(n), math.sqrt(2.0), math.sqrt(2.0 / math.pi)
 

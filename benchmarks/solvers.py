@@ -1,6 +1,6 @@
 """The i.i.d. order-parameter ODE: the harness's diffrax solve against scipy's solve_ivp.
 
-Problem (issue 7): notes section 3, K = M = 2, erf, learning rate 0.5, integrated to t = 1000
+Problem (issue 7): docs/equations.md, section 4, K = M = 2, erf, learning rate 0.5, integrated to t = 1000
 with 200 save points (t = 0 and 199 log-spaced times from 0.1), 16 seeds, each from its own
 initial (Q, R, T, v) as a run would draw them, rtol 1e-6, atol 1e-9.
 
@@ -37,7 +37,7 @@ def times() -> np.ndarray:
 
 
 def _erf_averages(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """I3 [K, P, P] and I4 [K, K, P, P] for erf(x / sqrt 2) units (notes, section 2, Saad & Solla 1995)."""
+    """I3 [K, P, P] and I4 [K, K, P, P] for erf(x / sqrt 2) units (docs/equations.md, section 2, Saad & Solla 1995)."""
     d = np.diagonal(cov)
     c11, c12, c13 = d[:K, None, None], cov[:K, :, None], cov[:K, None, :]
     c23, c33 = cov[None, :, :], d[None, None, :]
@@ -57,7 +57,7 @@ def _erf_averages(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def numpy_vector_field(T: np.ndarray, v: np.ndarray, vt: np.ndarray):
-    """d(Q, R)/dt of notes section 3 (second layer fixed, no noise) on a flat state."""
+    """d(Q, R)/dt of docs/equations.md, section 4 (second layer fixed, no noise) on a flat state."""
     a = np.concatenate([v, -vt])
 
     def rhs(t: float, y: np.ndarray) -> np.ndarray:

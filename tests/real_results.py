@@ -133,7 +133,7 @@ def real_results() -> RealResults:
         printed = io.StringIO()
         with contextlib.redirect_stdout(printed):
             status = main(["run", str(scenario_file), "--out", str(root), "--quiet"])
-        assert status == 0, printed.getvalue()
+        assert status in (0, 1, 3), printed.getvalue()  # a verdict (3 seeds: mostly inconclusive), not bad input
         scenario = scenario_lib.load(scenario_file)
         run_id = scenario_lib.run_id(scenario)
         verdict = scaling.run_scaling(

@@ -45,7 +45,7 @@ def _trajectory(scenario: dict, Q0, R0, times, tolerances=TIGHT):
 #
 # Saad & Solla 1995 (Phys. Rev. E 52, 4225) and Biehl & Schwarze 1995 (J. Phys. A 28, 643): for one
 # student and one teacher unit, g(x) = erf(x / sqrt 2), T = 1 and v = vt = 1, the erf closed forms
-# of I3 and I4 (theory notes, section 2) give, with a = 2 / pi,
+# of I3 and I4 (docs/equations.md, section 2) give, with a = 2 / pi,
 #   dR/dt = eta a phi(Q, R),    phi = (1 + Q - R^2) / ((1 + Q) S) - R / ((1 + Q) s)
 #   dQ/dt = 2 eta a psi(Q, R) + eta^2 a^2 chi(Q, R),
 #       psi = R / ((1 + Q) S) - Q / ((1 + Q) s),

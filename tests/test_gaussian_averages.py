@@ -169,7 +169,7 @@ def test_quadrature_reproduces_the_erf_closed_forms_at_singular_covariances():
 
 
 def test_linear_averages_are_covariances_on_both_routes():
-    # g(x) = x, g' = 1: I2 = C12, I3 = C23, I4 = C34, J0 = 1 (notes, section 2).
+    # g(x) = x, g' = 1: I2 = C12, I3 = C23, I4 = C34, J0 = 1 (docs/equations.md, section 2).
     cov = jnp.asarray(random_covariance(np.random.default_rng(3), 5, 1.7))
     K, P = 2, 5
     for method in ("auto", "quadrature"):

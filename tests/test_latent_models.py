@@ -99,7 +99,7 @@ def test_deep_latent_model_reports_its_monte_carlo_error():
 @pytest.mark.parametrize("feature_map", ["sign", "tanh"])
 def test_simulation_and_paired_latent_theory_agree(feature_map):
     # Issue 3: latent sign and tanh models at N ~ 300, D = N / 2, simulation and the exact
-    # finite-N projected equations (notes, section 4) agree, |z| <= 4 for test_error.
+    # finite-N projected equations (docs/equations.md, section 5) agree, |z| <= 4 for test_error.
     scenario = _scenario(
         {"input_dim": 300, "feature_map": feature_map},
         sgd={"time": 8.0}, run={"seeds": 16, "evaluations": 8, "test_samples": 4000},

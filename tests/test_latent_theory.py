@@ -30,7 +30,7 @@ def _random_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:
     [("erf", "erf", 0.0, False, 3, 2), ("erf", "erf", 0.3, True, 3, 2), ("tanh", "tanh", 0.2, True, 2, 1)],
 )
 def test_identity_covariances_reproduce_iid_equations(student, teacher, noise_std, train_second_layer, K, M):
-    # Required by theory notes, section 4: with Omega = Phi = I (D = N), summing the
+    # Required by docs/equations.md, section 5: with Omega = Phi = I (D = N), summing the
     # projected equations over tau gives back the section-3 equations exactly. Any
     # orthonormal basis diagonalises Omega = I, so a random one is used, and the
     # per-tau overlaps are the products of projections of random weights.
@@ -110,7 +110,7 @@ def test_marchenko_pastur_bins_have_the_law_s_moments(gamma):
 
 def test_feature_map_coefficients_match_closed_forms():
     # sign: kappa1 = sqrt(2/pi), E f^2 = 1; erf(z/sqrt2): kappa1 = 1/sqrt(pi), E f^2 = (2/pi) arcsin(1/2) = 1/3
-    # (Stein's lemma and the arcsine kernel, notes section 2).
+    # (Stein's lemma and the arcsine kernel, docs/equations.md, section 2).
     k1, ks = latent_theory.feature_map_coefficients("sign")
     assert k1 == pytest.approx(math.sqrt(2 / math.pi), rel=1e-12) and ks == pytest.approx(1 - 2 / math.pi, rel=1e-12)
     k1, ks = latent_theory.feature_map_coefficients("erf")

@@ -16,7 +16,7 @@ from harness.studies import scaling
 REPO = Path(__file__).resolve().parents[1]
 
 # K = M = 1 (no plateau, see the scaling module docstring), eta = 1.5 where the eta^2 term
-# of the notes' section 3 matters, short time, small sizes: a few seconds per size.
+# of docs/equations.md, section 4 matters, short time, small sizes: a few seconds per size.
 SCENARIO = """
 [teacher]
 hidden = 1

@@ -105,7 +105,7 @@ def test_two_cluster_inputs_run_end_to_end(factories, tmp_path):
 
 
 def test_given_moments_are_the_covariance_of_the_local_fields(factories):
-    # The order parameters are defined as Cov(lambda, nu) (notes, section 2); with the
+    # The order parameters are defined as Cov(lambda, nu) (docs/equations.md, section 2); with the
     # example's exact Omega = Phi = C = I + mu mu^T they must match the empirical
     # covariance of the local fields over many fresh samples.
     s = user_scenario("python:examples.two_clusters:inputs", **{"data.input_dim": 50})

@@ -187,6 +187,7 @@ COMMAND_MODULES: list[tuple[str, str]] = [
     ("harness.studies.scaling", "add_scale_command"),
     ("harness.studies.baselines", "add_baseline_commands"),
     ("harness.cli.fixed_points", "add_fixed_points_command"),
+    ("harness.cli.keys", "add_keys_command"),
 ]
 
 

@@ -5,7 +5,7 @@ derivative is written out rather than taken with ``jax.grad`` so that it is also
 defined at kinks (relu at 0: 0, sign at 0: 0 in the distributional sense we never
 need) and is cheap inside quadrature loops.
 
-Conventions (theory notes, section 1): ``erf`` means g(x) = erf(x / sqrt(2)), so that
+Conventions (docs/equations.md, section 1): ``erf`` means g(x) = erf(x / sqrt(2)), so that
 g'(x) = sqrt(2 / pi) exp(-x^2 / 2).
 """
 

@@ -1,7 +1,7 @@
 """Second moments of latent-variable inputs and their eigen-projections.
 
 A latent-variable data model draws c ~ N(0, I_D) and maps it to an input x in R^N.
-What the theory needs from the map (theory notes, sections 2 and 4) is
+What the theory needs from the map (docs/equations.md, sections 2 and 5) is
 
     mean   = E[x]                               (subtracted, so inputs are centred)
     Omega  = E[(x - mean)(x - mean)^T]          N x N
@@ -68,7 +68,7 @@ DEFAULT_MONTE_CARLO_CHUNK = 8192
 
 
 class FeatureMoments(NamedTuple):
-    """First and second moments of a latent-variable input model (theory notes, section 2)."""
+    """First and second moments of a latent-variable input model (docs/equations.md, section 2)."""
 
     omega: np.ndarray  # [N, N] covariance of the (centred) inputs
     phi: np.ndarray  # [N, D] E[x c^T]
@@ -79,7 +79,7 @@ class FeatureMoments(NamedTuple):
 
 
 class Projection(NamedTuple):
-    """One instance projected on the eigenbasis of Omega (theory notes, section 4)."""
+    """One instance projected on the eigenbasis of Omega (docs/equations.md, section 5)."""
 
     rho: np.ndarray  # [N] eigenvalues of Omega, ascending
     psi: np.ndarray  # [N, N] orthonormal eigenvectors, column tau <-> rho[tau]
@@ -118,7 +118,7 @@ def _as_matrix(value: np.ndarray, name: str) -> np.ndarray:
 
 
 def latent_preactivation_covariance(F: np.ndarray) -> np.ndarray:
-    """C = F^T F / D, the covariance of u = F^T c / sqrt(D) (theory notes, section 4)."""
+    """C = F^T F / D, the covariance of u = F^T c / sqrt(D) (docs/equations.md, section 5)."""
     F = _as_matrix(F, "F")
     return F.T @ F / F.shape[0]
 
@@ -139,7 +139,7 @@ def _closed_form(feature_map: str, C: np.ndarray) -> tuple[np.ndarray, np.ndarra
         np.fill_diagonal(omega, 1.0)
         return np.zeros(n), omega, np.sqrt(2.0 / (math.pi * var))
     if feature_map == "erf":
-        # Arcsine kernel for g(x) = erf(x/sqrt2) (theory notes, section 2, I2; Saad & Solla
+        # Arcsine kernel for g(x) = erf(x/sqrt2) (docs/equations.md, section 2, I2; Saad & Solla
         # 1995); it also holds on the diagonal. E g'(u) = sqrt(2/pi) E exp(-u^2/2)
         # = sqrt(2/pi) / sqrt(1 + C_ii).
         shifted = np.sqrt(1.0 + var)
@@ -247,7 +247,7 @@ def single_layer_moments(
     ``method="auto"`` uses the closed form when ``feature_map`` has one
     (CLOSED_FORM_MAPS) and Gauss-Hermite quadrature otherwise; "quadrature" forces
     quadrature (used to test it against the closed forms). Phi comes from Stein's
-    lemma, Phi_i. = F_i^T / sqrt(D) * E f'(u_i) (theory notes, section 4).
+    lemma, Phi_i. = F_i^T / sqrt(D) * E f'(u_i) (docs/equations.md, section 5).
     """
     _check_feature_map(feature_map)
     if method not in METHODS:
@@ -444,7 +444,7 @@ def eigen_projection(
     teacher_weights: np.ndarray,
     student_weights: np.ndarray,
 ) -> Projection:
-    """Project student and teacher on the eigenbasis of Omega (theory notes, section 4).
+    """Project student and teacher on the eigenbasis of Omega (docs/equations.md, section 5).
 
     teacher_weights: wt [M, D]; student_weights: w [K, N].
     """
@@ -457,7 +457,7 @@ def eigen_projection(
 
 
 def eigen_overlaps(projection: Projection) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per-eigenvalue overlaps q [N, K, K], r [N, K, M], t [N, M, M] (theory notes, section 4)."""
+    """Per-eigenvalue overlaps q [N, K, K], r [N, K, M], t [N, M, M] (docs/equations.md, section 5)."""
     w_proj, om_proj = projection.w_proj, projection.omega_proj
     q = np.einsum("tk,tl->tkl", w_proj, w_proj)
     r = np.einsum("tk,tm->tkm", w_proj, om_proj)
@@ -471,7 +471,7 @@ def order_parameters(
     teacher_weights: np.ndarray,
     student_weights: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt wt^T / D (theory notes, section 2)."""
+    """Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt wt^T / D (docs/equations.md, section 2)."""
     omega, phi, teacher_weights, student_weights = _check_instance(omega, phi, teacher_weights, student_weights)
     n, d = phi.shape
     Q = student_weights @ omega @ student_weights.T / n

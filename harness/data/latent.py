@@ -1,6 +1,6 @@
 """Latent-variable data models: x = G(c) - E G(c) with c ~ N(0, I_D); the teacher acts on c.
 
-Kinds (theory notes, sections 1 and 4):
+Kinds (docs/equations.md, sections 1 and 5):
 
 * ``latent``: one layer, G(c) = f(F^T c / sqrt(D)) with F a D x N matrix of i.i.d.
   N(0, 1) entries drawn per seed (the hidden-manifold model), f = ``data.feature_map``.
@@ -219,7 +219,7 @@ def latent_model(kind: str, input_dim: int, teacher_dim: int, generator: _Genera
         return x, c
 
     def order_parameters(params: LatentParams, w: Array, wt: Array) -> tuple[Array, Array, Array]:
-        # notes, section 2: Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt wt^T / D
+        # docs/equations.md, section 2: Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt wt^T / D
         Q = w @ params.omega @ w.T / n
         R = w @ params.phi @ wt.T / math.sqrt(n * d)
         T = wt @ wt.T / d
@@ -344,7 +344,7 @@ def build_latent_model(scenario: Scenario, dtype: Any) -> DataModel:
 
 
 class SeedProjections(Sequence):
-    """Per-seed eigen-projections (notes, section 4), computed when asked for.
+    """Per-seed eigen-projections (docs/equations.md, section 5), computed when asked for.
 
     ``projections[s]`` is :class:`harness.data.feature_covariance.Projection` for seed index s
     (position in the run's seed list): Omega's eigenvalues rho and eigenvectors psi, the

@@ -7,7 +7,7 @@ A data model is a pair of pure functions over an explicit per-seed parameter pyt
 * ``sample(params, key, n) -> (x, c)``: draw ``n`` fresh samples, ``x`` of shape
   ``[n, input_dim]`` fed to the student and ``c`` of shape ``[n, teacher_dim]`` fed to
   the teacher (``c = x`` for i.i.d. inputs, the latent variables otherwise);
-* ``order_parameters(params, w, wt) -> (Q, R, T)`` with the notes' definitions
+* ``order_parameters(params, w, wt) -> (Q, R, T)`` with the definitions of docs/equations.md
   (section 2), in the dtype of the weights given.
 
 Models are built from a resolved scenario by :func:`build_data_model`. A data kind declares
@@ -43,7 +43,7 @@ class DataModel(NamedTuple):
     # (user data models, harness.data.user); R and T are then NaN.
     labels_given: bool = False
     # Latent models (harness.data.latent): spectra(data_params, w, wt) -> per-seed
-    # eigen-projections of Omega (notes, section 4), computed lazily; describe(data_params)
+    # eigen-projections of Omega (docs/equations.md, section 5), computed lazily; describe(data_params)
     # -> a JSON-able dict for the run manifest (e.g. Monte Carlo standard errors).
     spectra: Callable[[Any, Array, Array], Any] | None = None
     describe: Callable[[Any], dict[str, Any]] | None = None

@@ -21,8 +21,8 @@ instance (cluster centres, a feature matrix, ...) that the factory draws, e.g. f
 
 Optionally ``UserData(omega=..., phi=..., latent_cov=...)`` gives Omega = E[x x^T]
 ``[N, N]``, Phi = E[x c^T] ``[N, D]`` and C = E[c c^T] ``[D, D]``, which define the order
-parameters as the covariance of the local fields (lambda, nu) (notes, section 2):
-Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt C wt^T / D. The notes take
+parameters as the covariance of the local fields (lambda, nu) (docs/equations.md, section 2):
+Q = w Omega w^T / N, R = w Phi wt^T / sqrt(N D), T = wt C wt^T / D. docs/equations.md takes
 c ~ N(0, I_D), i.e. C = I (pass ``latent_cov=np.eye(D)``); when the teacher acts on x
 itself (c = x), Phi = C = Omega. Whatever is not given is estimated once by Monte Carlo
 from :data:`MOMENT_SAMPLES` samples (a warning says so; the order parameters then carry
@@ -67,7 +67,7 @@ class UserData(NamedTuple):
     labels: bool = False  # True: sample returns (x [n, N], y [n]) and there is no teacher
     omega: Any = None  # [N, N] E[x x^T], or None to estimate
     phi: Any = None  # [N, D] E[x c^T], or None to estimate (meaningless with labels=True)
-    latent_cov: Any = None  # [D, D] E[c c^T] (identity in the notes), or None to estimate
+    latent_cov: Any = None  # [D, D] E[c c^T] (identity in docs/equations.md), or None to estimate
 
 
 def check_data_kind(scenario: Scenario) -> None:

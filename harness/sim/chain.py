@@ -6,7 +6,7 @@ next (Q, R, v) given the present ones is exactly that of the full simulation, so
 is the full simulation at a cost independent of N, and finite-size questions can be asked
 at N = 10^5 - 10^6.
 
-Derivation (notation of the theory notes, sections 1-2). Stack the weights as the rows of
+Derivation (notation of docs/equations.md, sections 1-2). Stack the weights as the rows of
 A = [w_1..w_K; wt_1..wt_M] ((K+M) x N), so that u = (lambda, nu) = A x / sqrt(N) and
 Sigma = A A^T / N = [[Q, R], [R^T, T]]. With c_k = v_k g'(lambda_k) Delta and the update
 w_k' = a w_k - (eta / sqrt(N)) c_k x  (a = 1 - eta kappa / N; kappa = sgd.weight_decay, 0 for
@@ -36,7 +36,7 @@ span, and its column is set to zero, which is exact for a positive semi-definite
 Because (Q, R, v) is a Markov chain, the chain and the full simulation give the same
 distribution of every observable at every time (tests/test_chain.py checks this).
 
-The generalisation error is exactly the Gaussian formula of (Q, R, T, v) (notes, section 2),
+The generalisation error is exactly the Gaussian formula of (Q, R, T, v) (docs/equations.md, section 2),
 so the chain's ``test_error`` is that value (there is no test set) and equals its
 ``overlap_error``.
 

@@ -1,16 +1,16 @@
 """The optax transformation that turns per-sample gradients into SGD updates.
 
-With the notes' scalings (section 1) the student's pre-activation is
+With the scalings of docs/equations.md (section 1) the student's pre-activation is
 lambda_k = w_k . x / sqrt(N), so the per-sample gradient of the loss
-1/2 (f(x) - y)^2 with respect to w_k is v_k g'(lambda_k) Delta x / sqrt(N). The notes'
-update w_k <- w_k - (eta / sqrt(N)) v_k g'(lambda_k) Delta x is therefore plain SGD
+1/2 (f(x) - y)^2 with respect to w_k is v_k g'(lambda_k) Delta x / sqrt(N). The update of
+docs/equations.md (1.1), w_k <- w_k - (eta / sqrt(N)) v_k g'(lambda_k) Delta x is therefore plain SGD
 with learning rate eta on w, and v_k <- v_k - (eta_v / N) g(lambda_k) Delta is plain SGD
 with learning rate eta_v / N on v. A second layer that is not trained gets zero updates.
 
 ``sgd.optimizer`` chooses the update rule (plain SGD is the default, and the only one
 the built-in theories describe):
 
-* ``"sgd"``: the notes' update above.
+* ``"sgd"``: the update of docs/equations.md above.
 * ``"momentum"``: heavy-ball momentum (``optax.sgd(lr, momentum, nesterov)``): a trace
   m <- g + beta m, update -lr m (Nesterov: -lr (g + beta m)), same learning rates as SGD.
   With beta = ``sgd.momentum`` = 0 it is plain SGD, bit for bit.
@@ -58,7 +58,7 @@ declare_keys("sgd", KEYS)
 
 
 def make_optimizer(scenario: Scenario) -> optax.GradientTransformation:
-    """The scenario's optimizer on ``{"w": ..., "v": ...}`` with the notes' learning-rate scalings."""
+    """The scenario's optimizer on ``{"w": ..., "v": ...}`` with the learning of docs/equations.md-rate scalings."""
     sgd = scenario.sgd
     n = scenario.data.input_dim
     kappa = sgd["weight_decay"]
@@ -94,5 +94,5 @@ def _layer_optimizer(sgd: dict, rate: float, decay: float) -> optax.GradientTran
     else:  # resolve() has already rejected anything else
         raise AssertionError(kind)
     if decay == 0.0:
-        return rule  # the default stays exactly the notes' plain SGD update
+        return rule  # the default stays exactly the plain of docs/equations.md SGD update
     return optax.chain(optax.add_decayed_weights(decay), rule)

@@ -202,7 +202,7 @@ def clean_labels(sim: Simulator, w: Array, v: Array, c: Array) -> Array:
 
 
 def sample_loss(scenario: Scenario, params: dict[str, Array], x: Array, y: Array) -> Array:
-    """The per-sample loss 1/2 (f(x) - y)^2 (notes, section 1)."""
+    """The per-sample loss 1/2 (f(x) - y)^2 (docs/equations.md, section 1)."""
     return 0.5 * (student_output(scenario, params, x) - y) ** 2
 
 

@@ -36,7 +36,7 @@ The fit and the verdict use U itself.
 Which observable: ``test_error`` (the default) carries the noise of each seed's finite
 held-out set, constant in time for a seed and not shrinking with N; U removes it from the
 mean but not from the error bars. ``--observable overlap_error`` (eps_g from the simulation's
-own order parameters, notes section 5) tests the dynamics without that noise.
+own order parameters, docs/equations.md, section 5.9) tests the dynamics without that noise.
 
 The fit
 -------

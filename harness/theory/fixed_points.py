@@ -1,4 +1,4 @@
-"""Fixed points of the i.i.d. order-parameter equations and their stability (notes, section 3).
+"""Fixed points of the i.i.d. order-parameter equations and their stability (docs/equations.md, section 4).
 
 The learning curve of a two-layer network trained by online SGD is organised by the fixed
 points of the order-parameter flow dy/dt = F(y) of :func:`harness.theory.iid.vector_field`:
@@ -662,7 +662,7 @@ def scenario_problem(scenario: Scenario) -> tuple[Problem, float]:
     if kind != "gaussian":
         raise InputError(
             f"scenario key 'data.kind' = {kind!r}: fixed points are computed from the i.i.d. theory "
-            "(notes, section 3) only; allowed: 'gaussian'"
+            "(docs/equations.md, section 4) only; allowed: 'gaussian'"
         )
     warn_if_not_plain_sgd(scenario, "the fixed points of the built-in theory")
     dyn = iid_theory.dynamics_of(scenario)
@@ -728,7 +728,7 @@ def fixed_points(scenario: Scenario) -> dict[str, Any]:
         predictions["learning_rate_limit_note"] = limit.note
     dyn = iid_theory.dynamics_of(scenario)
     return {
-        "theory": "i.i.d. Gaussian inputs, order-parameter equations of the theory notes, section 3",
+        "theory": "i.i.d. Gaussian inputs, order-parameter equations of docs/equations.md, section 4",
         "K": problem.layout.K, "M": problem.layout.M, "student": dyn.student, "teacher": dyn.teacher,
         "learning_rate": dyn.learning_rate, "second_layer_learning_rate": dyn.second_layer_learning_rate,
         "train_second_layer": dyn.train_second_layer, "noise_std": dyn.noise_std,

@@ -1,4 +1,4 @@
-"""Gaussian averages I2, I3, I4 (and the noise average J0) of theory notes, section 2.
+"""Gaussian averages I2, I3, I4 (and the noise average J0) of docs/equations.md, section 2.
 
 For u = (lambda_1..K, nu_1..M) ~ N(0, cov), P = K + M, g_a the student activation for
 a < K and the teacher activation for a >= K, and g' always the student derivative:
@@ -10,7 +10,7 @@ a < K and the teacher activation for a >= K, and g' always the student derivativ
 
 Routes
 ------
-* student == teacher == "erf": the closed forms of Saad & Solla 1995 (notes, section 2),
+* student == teacher == "erf": the closed forms of Saad & Solla 1995 (docs/equations.md, section 2),
   evaluated by broadcasting over all index tuples at once; J0 = (2/pi) / sqrt((1+C11)(1+C22) - C12^2).
 * student == teacher == "linear": I2 = C12, I3 = C23, I4 = C34, J0 = 1.
 * anything else: product quadrature over the at most four *distinct* variables of each
@@ -119,7 +119,7 @@ _TWO_OVER_PI = 2.0 / math.pi
 
 
 class Averages(NamedTuple):
-    """The Gaussian averages of notes section 2 at one covariance."""
+    """The Gaussian averages of docs/equations.md, section 2 at one covariance."""
 
     I2: Array  # [P, P]       E[g_a(u_a) g_b(u_b)]
     I3: Array  # [K, P, P]    E[g'(lambda_k) u_b g_c(u_c)]
@@ -164,7 +164,7 @@ def default_points(student: str, teacher: str) -> int:
 
 
 def _erf_closed_form(cov: Array, K: int) -> Averages:
-    """Saad & Solla 1995 closed forms (notes, section 2), broadcast over all index tuples.
+    """Saad & Solla 1995 closed forms (docs/equations.md, section 2), broadcast over all index tuples.
 
     Axis letters: k, l index students (first K variables), b, c, d any variable. The
     square roots are of determinants of I + (a covariance sub-block), hence >= 1 for a
@@ -209,7 +209,7 @@ def _erf_closed_form(cov: Array, K: int) -> Averages:
 
 
 def _linear_closed_form(cov: Array, K: int) -> Averages:
-    """g(x) = x, g' = 1: every average is a plain covariance (notes, section 2)."""
+    """g(x) = x, g' = 1: every average is a plain covariance (docs/equations.md, section 2)."""
     P = cov.shape[0]
     return Averages(
         I2=cov,
@@ -669,7 +669,7 @@ def gaussian_averages(
     points: int | None = None,
     method: str = "auto",
 ) -> Averages:
-    """I2, I3, I4 and J0 at the covariance ``cov`` = [[Q, R], [R^T, T]] (notes, section 2).
+    """I2, I3, I4 and J0 at the covariance ``cov`` = [[Q, R], [R^T, T]] (docs/equations.md, section 2).
 
     ``points`` (nodes per dimension, quadrature only) defaults to ``default_points``;
     ``method="quadrature"`` forces quadrature where a closed form exists (for testing).
@@ -701,6 +701,6 @@ def generalisation_error(
     points: int | None = None,
     method: str = "auto",
 ) -> Array:
-    """eps_g = 1/2 sum_ab a_a a_b I2(a, b) with a = (v, -vt) (notes, section 2)."""
+    """eps_g = 1/2 sum_ab a_a a_b I2(a, b) with a = (v, -vt) (docs/equations.md, section 2)."""
     I2 = pair_averages(cov, K, student, teacher, points=points, method=method)
     return 0.5 * a @ I2 @ a

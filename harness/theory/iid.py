@@ -1,4 +1,4 @@
-"""The order-parameter ODEs for i.i.d. Gaussian inputs (theory notes, section 3).
+"""The order-parameter ODEs for i.i.d. Gaussian inputs (docs/equations.md, section 4).
 
 State y = (Q [K, K], R [K, M], v [K]); T and the teacher's second layer are constants.
 With u = (lambda, nu) ~ N(0, Sigma), Sigma = [[Q, R], [R^T, T]], and
@@ -67,7 +67,7 @@ def dynamics_of(scenario: Scenario, *, second_order: bool = True) -> Dynamics:
 
 
 def covariance(Q: Array, R: Array, T: Array) -> Array:
-    """Sigma = [[Q, R], [R^T, T]], the covariance of (lambda, nu) (notes, section 2)."""
+    """Sigma = [[Q, R], [R^T, T]], the covariance of (lambda, nu) (docs/equations.md, section 2)."""
     return jnp.block([[Q, R], [jnp.swapaxes(R, -1, -2), T]])
 
 
@@ -81,7 +81,7 @@ def error_signal_moments(dyn: Dynamics, cov: Array, a: Array) -> tuple[Array, Ar
 
 
 def vector_field(dyn: Dynamics, state: tuple[Array, Array, Array], T: Array, teacher_v: Array):
-    """d(Q, R, v)/dt of notes section 3 for one seed."""
+    """d(Q, R, v)/dt of docs/equations.md, section 4 for one seed."""
     Q, R, v = state
     K = dyn.K
     eta = dyn.learning_rate
@@ -170,7 +170,7 @@ def _compiled_overlap_error(K: int, student: str, teacher: str, leading_axes: in
 
 
 def overlap_error(dyn: Dynamics, ops: OrderParameters, teacher_v: Array) -> Array:
-    """eps_g from order parameters via the Gaussian formula (notes, section 2).
+    """eps_g from order parameters via the Gaussian formula (docs/equations.md, section 2).
 
     Works for any leading axes (seeds, times); ``teacher_v`` has the leading axes of
     ``ops.v`` and a trailing M axis.

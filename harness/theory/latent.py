@@ -1,6 +1,6 @@
 """Order-parameter ODEs for latent-variable data, projected on the eigenbasis of Omega.
 
-Theory notes, section 4. For one instance (generator weights, teacher, initial student)
+Theory docs/equations.md, section 5. For one instance (generator weights, teacher, initial student)
 let Omega psi_tau = rho_tau psi_tau, w_k^tau = psi_tau . w_k and
 om_m^tau = sqrt(N) psi_tau^T Phi wt_m / sqrt(D). The state is the per-eigenvalue overlaps
 q_kl(tau) = w_k^tau w_l^tau and r_km(tau) = w_k^tau om_m^tau (t_mn(tau) = om_m^tau om_n^tau
@@ -74,7 +74,7 @@ class Spectrum(NamedTuple):
 
 
 def aggregate(rho: Array, weight: Array, q: Array, r: Array) -> tuple[Array, Array]:
-    """Q = sum_tau weight rho q(tau), R = sum_tau weight r(tau) (notes, section 4)."""
+    """Q = sum_tau weight rho q(tau), R = sum_tau weight r(tau) (docs/equations.md, section 5)."""
     return jnp.einsum("t,tkl->kl", weight * rho, q), jnp.einsum("t,tkm->km", weight, r)
 
 
@@ -90,13 +90,13 @@ def projected_vector_field(
     t: Array,
     teacher_v: Array,
 ) -> tuple[Array, Array, Array]:
-    """d(q, r, v)/dt of notes section 4 for one seed, given its current (Q, R) = aggregate(q, r)."""
+    """d(q, r, v)/dt of docs/equations.md, section 5 for one seed, given its current (Q, R) = aggregate(q, r)."""
     K = dyn.K
     eta = dyn.learning_rate
     a = jnp.concatenate([v, -teacher_v])
     sigma = iid_theory.covariance(Q, R, T)
     h, j, g_delta = iid_theory.error_signal_moments(dyn, sigma, a)
-    # G = Sigma^{-1} H through a solve (notes, section 4); a singular Sigma is caught before the solve
+    # G = Sigma^{-1} H through a solve (docs/equations.md, section 5); a singular Sigma is caught before the solve
     G = jnp.linalg.solve(sigma, h)  # [K+M, K]
     G_student, G_teacher = G[:K], G[K:]  # [K(j), K(k)], [M(n), K(k)]
     # dr[tau,k,m] = -eta v_k (rho_tau sum_j G_s[j,k] r[tau,j,m] + sum_n G_t[n,k] t[tau,n,m])
@@ -179,7 +179,7 @@ def solve_projected(
 
 
 def exact_spectrum(projection: feature_covariance.Projection) -> Spectrum:
-    """One seed's exact projected inputs from its eigen-projection (notes, section 4)."""
+    """One seed's exact projected inputs from its eigen-projection (docs/equations.md, section 5)."""
     w, om = projection.w_proj, projection.omega_proj  # [N, K], [N, M]
     n = w.shape[0]
     return Spectrum(
@@ -257,7 +257,7 @@ def marchenko_pastur_bins(gamma: float, bins: int) -> tuple[np.ndarray, np.ndarr
 
 
 def thermodynamic_spectra(scenario: Scenario, start: InitialState) -> Spectrum:
-    """Binned thermodynamic-limit inputs, paired with each seed (notes, section 4).
+    """Binned thermodynamic-limit inputs, paired with each seed (docs/equations.md, section 5).
 
     rho_b = kappa1^2 mu_b + kappa_*^2 over the Marchenko-Pastur bins, t_b = gamma (rho_b - kappa_*^2) T
     with the seed's exact T. Initial overlaps: for a student drawn independently of F,

@@ -38,7 +38,7 @@ class InitialState(NamedTuple):
     student_w: np.ndarray  # [S, K, N]
     data_params: Any  # the data model's per-seed parameters (e.g. F for latent models)
     # Optional, for latent models: Omega's eigen-decomposition and the weights' projections on
-    # it (notes, section 4) when the data model provides them; None otherwise.
+    # it (docs/equations.md, section 5) when the data model provides them; None otherwise.
     spectrum: Any = None
 
 

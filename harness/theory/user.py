@@ -7,7 +7,7 @@
       copy, so changing it has no effect);
     * ``start``: :class:`harness.theory.sources.InitialState`, every seed's initial
       conditions in float64 with a leading seed axis S: ``start.order_parameters`` holds
-      ``Q [S, K, K]``, ``R [S, K, M]``, ``T [S, M, M]`` and ``v [S, K]`` (notes, section 2),
+      ``Q [S, K, K]``, ``R [S, K, M]``, ``T [S, M, M]`` and ``v [S, K]`` (docs/equations.md, section 2),
       ``start.teacher_v [S, M]``, the weights ``start.student_w [S, K, N]`` and
       ``start.teacher_w [S, M, D]``, the data model's per-seed parameters
       ``start.data_params`` (e.g. the feature matrix of a latent model) and the optional
