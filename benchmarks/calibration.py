@@ -22,11 +22,11 @@ from scipy import stats
 
 from harness.core import scenario as sc
 from harness.core.trajectories import Trajectories
+from harness.equations.sources import builtin_iid
 from harness.results.judgement import Margin, judge
-from harness.run import experiment
+from harness.runner import experiment
 from harness.sim import simulation
 from harness.sim.initial import initial_state
-from harness.theory.sources import builtin_iid
 
 SEED_COUNTS = (3, 8, 16, 32, 64)
 ENSEMBLE_SEEDS = 12_800

@@ -30,7 +30,7 @@ from scipy.special import erf
 from benchmarks import Timing, row
 from harness.core import scenario as scenario_lib
 from harness.core import threefry
-from harness.run import experiment
+from harness.runner import experiment
 from harness.sim import simulation
 
 N, K, M, SEEDS = 500, 2, 2, 16

@@ -35,10 +35,10 @@ import numpy as np
 from harness.core import scenario as scenario_lib
 from harness.core import threefry
 from harness.core import times as time_grid
+from harness.equations import iid as iid_theory
+from harness.equations import latent as latent_theory
 from harness.sim import simulation
 from harness.sim.initial import initial_state
-from harness.theory import iid as iid_theory
-from harness.theory import latent as latent_theory
 
 N, D, K, M, SEEDS = 1000, 500, 2, 2, 16
 

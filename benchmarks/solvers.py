@@ -24,9 +24,9 @@ from scipy.integrate import solve_ivp
 
 from benchmarks import Timing, load_average, row
 from harness.core import scenario as scenario_lib
+from harness.equations import iid as iid_theory
 from harness.sim import simulation
 from harness.sim.initial import initial_state
-from harness.theory import iid as iid_theory
 
 K, M, SEEDS, ETA, RTOL, ATOL = 2, 2, 16, 0.5, 1e-6, 1e-9
 NAME = "i.i.d. ODE solve"

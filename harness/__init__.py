@@ -38,7 +38,7 @@ _EXPORTS: dict[str, str] = {
     "InputError": "harness.core.errors",
     "DataModel": "harness.data.model",
     "register_data_kind": "harness.data.model",
-    "register_theory": "harness.theory.user",
+    "register_theory": "harness.equations.user",
     "check_baselines": "harness.studies.baselines",
     "assert_matches_baseline": "harness.studies.baselines",
 }

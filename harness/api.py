@@ -129,14 +129,14 @@ def run(
         progress: ``progress(step, total)`` called as the simulation advances.
         theory: a theory to use instead of ``theory.source``: a function
             ``theory(scenario, start, times)`` returning ``{observable: [S, E] or [E]}``
-            (harness.theory.user), or the name of a registered theory.
+            (harness.equations.user), or the name of a registered theory.
 
     Returns:
         The run, with its verdict, tables and (when stored) folder.
     """
     configure()
     resolved = _with_theory(load_scenario(scenario), theory)
-    from harness.run import pipeline
+    from harness.runner import pipeline
 
     if out is None:
         return _result(pipeline.compute_run(resolved, progress=progress), resolved, None)
@@ -157,7 +157,7 @@ def theory(scenario: ScenarioLike = None, out: str | Path | None = None, *, forc
     """
     configure()
     resolved = load_scenario(scenario)
-    from harness.run import pipeline
+    from harness.runner import pipeline
 
     if out is None:
         return _result(pipeline.compute_theory(resolved), resolved, None)
@@ -232,7 +232,7 @@ def _with_theory(scenario: Scenario, theory: Callable[..., Any] | str | None) ->
     if theory is None:
         return scenario
     if callable(theory):
-        from harness.theory.user import register_theory
+        from harness.equations.user import register_theory
 
         name = f"{getattr(theory, '__module__', 'theory')}.{getattr(theory, '__qualname__', 'theory')}"
         name = name.replace(":", ".").replace("<", "").replace(">", "")

@@ -16,13 +16,13 @@ from pathlib import Path
 import harness.data.latent  # noqa: F401  the latent data kinds and their [data] keys
 import harness.data.model  # noqa: F401  data.kind = "gaussian"
 import harness.data.user  # noqa: F401  data.kind = "python:..."
+import harness.equations.latent  # noqa: F401  theory.limit / theory.bins, the latent built-in theories
+import harness.equations.sources  # noqa: F401  theory.source = "builtin" / "none"
+import harness.equations.user  # noqa: F401  theory.source = "python:..." / "file:..."
 import harness.results.judgement  # noqa: F401  the [agreement] table
 import harness.sim.chain  # noqa: F401  run.engine = "chain"
 import harness.sim.optimizers  # noqa: F401  the [sgd] update rules
 import harness.sim.simulation  # noqa: F401  run.engine = "full"
-import harness.theory.latent  # noqa: F401  theory.limit / theory.bins, the latent built-in theories
-import harness.theory.sources  # noqa: F401  theory.source = "builtin" / "none"
-import harness.theory.user  # noqa: F401  theory.source = "python:..." / "file:..."
 from harness.core.keys import PYTHON_TYPES
 from harness.core.scenario import builtin_schema
 

@@ -14,7 +14,7 @@ from harness.core import scenario as sc
 from harness.core import threefry
 from harness.core.activations import get_activation
 from harness.core.trajectories import observable_names
-from harness.run import experiment
+from harness.runner import experiment
 from harness.sim import chain
 
 

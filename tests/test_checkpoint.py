@@ -11,9 +11,9 @@ import pytest
 
 from harness.core import scenario as scenario_lib
 from harness.core.trajectories import Trajectories
-from harness.run.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder
-from harness.run.experiment import simulate
-from harness.run.pipeline import run_and_store
+from harness.runner.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder
+from harness.runner.experiment import simulate
+from harness.runner.pipeline import run_and_store
 
 TINY = {
     "data": {"input_dim": 50},

@@ -24,9 +24,9 @@ from harness.cli.main import main
 from harness.core import scenario as scenario_lib
 from harness.core.files import nulls_as_nan
 from harness.results.store import INDEX_NAME, RUN_FILES, read_index
-from harness.run import pipeline
-from harness.run.checkpoint import FILE_NAME as CHECKPOINT_FILE
-from harness.run.checkpoint import checkpoint_folder
+from harness.runner import pipeline
+from harness.runner.checkpoint import FILE_NAME as CHECKPOINT_FILE
+from harness.runner.checkpoint import checkpoint_folder
 from harness.studies import sweep
 
 REPO = Path(__file__).resolve().parents[1]
@@ -226,7 +226,7 @@ def test_a_saved_baseline_manifest_is_strict_json(tmp_path):
 
 def _manifest_keys_read_by_report() -> set[str]:
     """Every constant key the report looks up in a manifest: ``….manifest.get("k")``/``….manifest["k"]``."""
-    tree = ast.parse((REPO / "harness" / "report.py").read_text())
+    tree = ast.parse((REPO / "harness" / "plot" / "report.py").read_text())
     keys = set()
     for node in ast.walk(tree):
         if (isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute) and node.func.attr == "get"

@@ -15,7 +15,7 @@ import pytest
 from scipy import integrate, special
 
 from harness.core.errors import InputError
-from harness.theory.gaussian_averages import (
+from harness.equations.gaussian_averages import (
     Averages,
     gaussian_averages,
     generalisation_error,

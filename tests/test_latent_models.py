@@ -18,7 +18,7 @@ from harness.data import latent as latent_models
 from harness.data.model import build_data_model
 from harness.results import comparison
 from harness.results.judgement import Margin
-from harness.run import experiment, pipeline
+from harness.runner import experiment, pipeline
 
 
 def _scenario(data: dict, **sections) -> dict:

@@ -13,10 +13,10 @@ from harness.core import scenario as scenario_lib
 from harness.core import times as time_grid
 from harness.core.errors import InputError
 from harness.core.scenario import ScenarioError
+from harness.equations import iid as iid_theory
+from harness.equations import latent as latent_theory
 from harness.sim import simulation
 from harness.sim.initial import initial_state
-from harness.theory import iid as iid_theory
-from harness.theory import latent as latent_theory
 
 
 def _random_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:

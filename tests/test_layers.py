@@ -123,8 +123,9 @@ def test_a_theory_given_as_a_function(tmp_path):
 
 
 def test_the_notebook_tour_runs(tmp_path):
+    env = {**os.environ, "PYTHONPATH": str(REPO)}  # this checkout's harness, wherever it is installed from
     result = subprocess.run([sys.executable, str(REPO / "examples" / "notebook_tour.py"), str(tmp_path)],
-                            cwd=REPO, capture_output=True, text=True)
+                            cwd=REPO, capture_output=True, text=True, env=env)
     assert result.returncode == 0, result.stderr[-3000:]
     assert (tmp_path / "tour_learning_curve.png").stat().st_size > 10_000
     assert "final test error" in result.stdout

@@ -7,12 +7,12 @@ import pytest
 
 from harness.core import scenario as sc
 from harness.core import times as time_grid
+from harness.equations.sources import builtin_iid
 from harness.results import comparison
 from harness.results.judgement import Margin
-from harness.run.experiment import run_experiment, simulate
+from harness.runner.experiment import run_experiment, simulate
 from harness.sim import simulation
 from harness.sim.initial import initial_state
-from harness.theory.sources import builtin_iid
 
 INNER = 13.78  # measured when written: the band lies 13.8 margins out where it lies furthest
 

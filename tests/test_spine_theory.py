@@ -9,7 +9,7 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from harness.core import scenario as sc
-from harness.theory import iid as iid_theory
+from harness.equations import iid as iid_theory
 
 
 def _initial(K: int, M: int, rng: np.random.Generator, scale: float = 0.3):

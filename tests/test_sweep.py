@@ -22,8 +22,8 @@ from harness.cli.main import main
 from harness.core import scenario as scenario_lib
 from harness.core.files import is_abandoned, staging_folder
 from harness.results.store import append_index_row, is_complete_run, read_index, remove_index_leftovers
-from harness.run.checkpoint import FILE_NAME
-from harness.run.experiment import simulate
+from harness.runner.checkpoint import FILE_NAME
+from harness.runner.experiment import simulate
 from harness.sim import simulation
 from harness.studies import sweep
 
@@ -67,7 +67,7 @@ student.hidden = [1, 2]
     assert grid.points == [{"sgd.learning_rate": lr, "student.hidden": k} for lr in (0.1, 0.2, 0.3) for k in (1, 2)]
     assert [s["student"]["hidden"] for s in grid.scenarios] == [1, 2] * 3
     # The derived default second layer follows the swept hidden size.
-    assert grid.scenarios[1]["student"]["second_layer"] == [1.0, 1.0]
+    assert grid.scenarios[1]["student"]["second_layer"] == (1.0, 1.0)
     assert len(set(grid.run_ids)) == 6
 
     paired = sweep.load_sweep(_write(tmp_path / "z.toml", TINY + """

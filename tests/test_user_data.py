@@ -17,8 +17,8 @@ from harness.core.errors import InputError
 from harness.core.trajectories import observable_names
 from harness.data.model import build_data_model
 from harness.data.user import MOMENT_SAMPLES
-from harness.run import experiment
-from harness.run.pipeline import run_and_store
+from harness.runner import experiment
+from harness.runner.pipeline import run_and_store
 
 REPO = Path(__file__).resolve().parents[1]
 

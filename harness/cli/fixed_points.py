@@ -3,7 +3,7 @@
     harness fixed-points [SCENARIO.toml] [--out DIR]
 
 Finds the unspecialised and specialised fixed points of the scenario's i.i.d. order-parameter
-flow (:mod:`harness.theory.fixed_points`), prints what they predict (plateau height, escape rate,
+flow (:mod:`harness.equations.fixed_points`), prints what they predict (plateau height, escape rate,
 asymptotic error and decay rate, learning-rate limit) and writes everything to
 ``DIR/fixed_points_<run_id>.json`` atomically, numbers that do not exist as null. Exit status 0,
 or 2 on bad input (one line on stderr, nothing written).
@@ -42,7 +42,7 @@ def output_path(out: Path, scenario: dict[str, Any]) -> Path:
 def run_fixed_points_command(args: argparse.Namespace) -> int:
     from harness.core import scenario as scenario_lib
     from harness.core.files import atomic_write_json
-    from harness.theory import fixed_points
+    from harness.equations import fixed_points
 
     scenario = scenario_lib.load(args.scenario)  # bad input raises InputError before any work
     result = fixed_points.fixed_points(scenario)

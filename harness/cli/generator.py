@@ -96,7 +96,7 @@ def add_generator_commands(subparsers: argparse._SubParsersAction) -> None:
 
 def _cmd_train(args: argparse.Namespace) -> int:
     from harness.data.trained_generator import default_store, train_generator
-    from harness.run.progress import Progress
+    from harness.runner.progress import Progress
 
     store = args.store if args.store is not None else default_store()
     trained = False

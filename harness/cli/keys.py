@@ -12,7 +12,7 @@ import sys
 import textwrap
 
 from harness.core.errors import InputError
-from harness.core.scenario import JUDGING_SECTIONS, builtin_schema, key_table
+from harness.core.scenario import JUDGING_SECTIONS, key_table
 
 
 def format_keys(section: str | None = None, width: int = 100) -> str:
@@ -45,5 +45,5 @@ def add_keys_command(subparsers: argparse._SubParsersAction) -> None:
         "keys", help="list every scenario key with its default, allowed values and meaning",
         description="Every scenario key, section by section, with its default, what it allows and what it means.",
     )
-    keys.add_argument("section", nargs="?", choices=list(builtin_schema()), help="one section only")
+    keys.add_argument("section", nargs="?", help="one section only (data, teacher, student, sgd, run, theory, ...)")
     keys.set_defaults(handler=_cmd_keys)

@@ -118,8 +118,8 @@ def verdict_status(stored) -> int:
 
 def _cmd_run(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
-    from harness.run.pipeline import run_and_store
-    from harness.run.progress import Progress
+    from harness.runner.pipeline import run_and_store
+    from harness.runner.progress import Progress
 
     with Progress("simulating", 1, enabled=not args.quiet) as bar:
 
@@ -134,7 +134,7 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 def _cmd_theory(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)
-    from harness.run.pipeline import theory_and_store
+    from harness.runner.pipeline import theory_and_store
 
     stored = theory_and_store(scenario, args.out, force=args.force)
     print_run_summary(stored, scenario)

@@ -75,7 +75,11 @@ class ScenarioBase(Mapping[str, Section]):
     def __repr__(self) -> str:
         return f"Scenario({plain(self)!r})"
 
-    def __reduce__(self):  # picklable (sweep workers): rebuilt from its sections
-        return (type(self), (self._sections,))
+    def __reduce__(self):
+        # Pickled (for a sweep's worker processes) as its table and resolved again there: the
+        # worker then has the same extensions registered (harness.builtins) and checks it anew.
+        from harness.core.scenario import resolve
+
+        return (resolve, (plain(self),))
 
 

@@ -47,7 +47,7 @@ DEFAULT_QUADRATURE_POINTS = 40
 """Gauss-Hermite nodes per dimension of the pair integrals. tanh converges slowly
 (poles at +-i pi/2): with C_ii ~ 1 and |rho| <= 0.5, 40 nodes are within ~2e-7 of
 160 nodes off the diagonal, 60 nodes within ~6e-9 (measured when this was written).
-The equally spaced rule of harness/theory/gaussian_averages.py converges faster for tanh
+The equally spaced rule of harness/equations/gaussian_averages.py converges faster for tanh
 (~1e-7 at 24 nodes, ~7e-11 at 40 on the same test); Gauss-Hermite is kept as specified
 for this module (swapping the rule is a one-line change in _quadrature)."""
 

@@ -65,11 +65,11 @@ import numpy as np
 from harness.core import threefry
 from harness.core.activations import get_activation
 from harness.core.scenario import Scenario
+from harness.equations import iid as iid_theory
+from harness.equations.gaussian_averages import generalisation_error
 from harness.sim import simulation
 from harness.sim.engines import Engine, register_engine
 from harness.sim.initial import initial_state
-from harness.theory import iid as iid_theory
-from harness.theory.gaussian_averages import generalisation_error
 
 Array = jax.Array
 State = simulation.State  # params {"Q": [S,K,K], "R": [S,K,M], "v": [S,K]}, opt_state (), step [S]

@@ -3,7 +3,7 @@
 The simulation draws each seed's teacher, initial student and data instance from the
 seed's keys (harness.sim.simulation.draw_initial_weights); :func:`initial_state` turns those
 weights into the exact initial order parameters, computed in float64, which every theory
-starts from (harness.theory.sources.InitialState).
+starts from (harness.equations.sources.InitialState).
 """
 
 from __future__ import annotations
@@ -14,9 +14,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.equations import iid as iid_theory
+from harness.equations.sources import InitialState
 from harness.sim.simulation import draw_initial_weights
-from harness.theory import iid as iid_theory
-from harness.theory.sources import InitialState
 
 
 def initial_state(sim: Any, seed_indices: np.ndarray) -> InitialState:

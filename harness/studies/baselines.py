@@ -5,7 +5,7 @@ A *baseline* is a folder that a user commits next to their code::
     BASELINES/<name>/scenario.toml       the resolved scenario (every default filled in)
     BASELINES/<name>/theory.parquet      seed, t, observable, theory: the reference trajectories
     BASELINES/<name>/initial_state.npz   every seed's initial conditions (the leaves of
-                                         harness.theory.sources.InitialState, in order)
+                                         harness.equations.sources.InitialState, in order)
     BASELINES/<name>/tolerances.toml     how far ``harness check`` lets each observable move
     BASELINES/<name>/manifest.json       when and with which package versions it was made
 
@@ -312,9 +312,9 @@ def _check_source(scenario: dict, where: str) -> None:
 
 def solve_theory(scenario: dict, start: Any | None = None) -> tuple[np.ndarray, Any, np.ndarray]:
     """``(t, start, values [S, E, O])``: the theory alone, from ``start`` or freshly drawn conditions."""
+    from harness.equations.sources import predict
     from harness.sim import simulation
     from harness.sim.initial import initial_state
-    from harness.theory.sources import predict
 
     t = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     if start is None:
@@ -357,7 +357,7 @@ def save_baseline(scenario: dict, directory: str | Path, name: str, *, force: bo
         staging_folder,
     )
     from harness.core.trajectories import observable_names
-    from harness.run.pipeline import package_versions
+    from harness.runner.pipeline import package_versions
 
     directory = Path(directory)
     final = directory / name

@@ -814,8 +814,8 @@ def run_scaling(
     from harness.core.files import atomic_write_json
     from harness.core.trajectories import from_frame
     from harness.results.store import append_index_row
-    from harness.run.pipeline import run_and_store
-    from harness.run.progress import Progress
+    from harness.runner.pipeline import run_and_store
+    from harness.runner.progress import Progress
 
     log = log or sys.stderr
     sizes = sorted(sizes)

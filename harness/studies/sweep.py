@@ -33,7 +33,7 @@ Never lose, never duplicate: a point whose run folder is complete in the output 
 is not computed again (a complete folder whose index row was lost is re-indexed);
 nothing is ever half-written (see :mod:`harness.core.files`), so a sweep killed at any
 moment, even with SIGKILL, is finished by running it again. Long points also checkpoint
-their state (:mod:`harness.run.checkpoint`) and resume from it.
+their state (:mod:`harness.runner.checkpoint`) and resume from it.
 
 Common random numbers: every seed's random keys derive from ``run.seed`` and the seed
 index only, so with ``run.common_random_numbers = true`` (the default) points that differ
@@ -72,7 +72,7 @@ from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
 from harness.core.files import atomic_write_json, is_abandoned, read_json
 from harness.results.store import append_index_row, is_complete_run, read_index, remove_index_leftovers
-from harness.run.checkpoint import checkpoint_folder, discard_checkpoint
+from harness.runner.checkpoint import checkpoint_folder, discard_checkpoint
 
 SWEEP_MODES = ("grid", "zip")
 MAX_POINTS = 100_000
@@ -271,8 +271,10 @@ def _worker_environment() -> Iterator[None]:
 
 def compute_point(task: PointTask):
     """Run on a worker: compute one point and return its tables (a ``ComputedRun``)."""
-    from harness.run.pipeline import compute_run
+    from harness.core.configure import configure
+    from harness.runner.pipeline import compute_run
 
+    configure()  # a worker is a process of its own: JAX's options are set there too
     with warnings.catch_warnings():
         # Diverged seeds are recorded in the manifest; the client reports them.
         warnings.filterwarnings("ignore", message=".*seeds diverged", category=RuntimeWarning)
@@ -596,7 +598,7 @@ def _take_stock(plan: SweepPlan, out_dir: Path, status: list[str]) -> list[int]:
     complete folder without any row to add (written by someone else) is computed again
     and replaced. Also removes stale temporary files and the checkpoints of stored runs.
     """
-    from harness.run.pipeline import judge_stored_run
+    from harness.runner.pipeline import judge_stored_run
 
     _remove_stale_partials(out_dir)
     indexed = _indexed_run_ids(out_dir)
@@ -631,7 +633,7 @@ def _indexed_run_ids(out_dir: Path) -> set[str]:
 
 def _store(computed, out_dir: Path) -> None:
     """Write a computed point unless an identical run was stored meanwhile by another writer."""
-    from harness.run.pipeline import store_run
+    from harness.runner.pipeline import store_run
 
     folder = out_dir / computed.run_id
     if is_complete_run(folder) and computed.run_id in _indexed_run_ids(out_dir):
@@ -674,7 +676,7 @@ def run_sweep(
     the end. Failing points are reported on ``stream`` and in ``sweep.json``; they do
     not stop the others.
     """
-    from harness.run.progress import Progress
+    from harness.runner.progress import Progress
 
     stream = stream if stream is not None else sys.stderr
     out_dir = Path(out_dir).absolute()

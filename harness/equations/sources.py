@@ -7,9 +7,9 @@ theory returns values in the :mod:`harness.core.trajectories` layout ``[S, E, O]
 observables it does not predict.
 
 A theory source declares itself in one place with :func:`register_source` (``builtin`` and
-``none`` here; ``python:`` and ``file:`` in harness.theory.user); the built-in theory of
+``none`` here; ``python:`` and ``file:`` in harness.equations.user); the built-in theory of
 each data kind with :func:`register_builtin_theory` (i.i.d. inputs here, the latent kinds
-in harness.theory.latent).
+in harness.equations.latent).
 """
 
 from __future__ import annotations
@@ -23,7 +23,7 @@ import numpy as np
 from harness.core.keys import Key
 from harness.core.scenario import Scenario, ScenarioError, chosen, declare_keys, register_choice
 from harness.core.trajectories import observable_names, stack_observables
-from harness.theory import iid as iid_theory
+from harness.equations import iid as iid_theory
 
 Array = Any
 

@@ -22,13 +22,13 @@ import numpy as np
 from harness.core import times as time_grid
 from harness.core.scenario import Scenario, run_id
 from harness.core.trajectories import Trajectories, observable_names, stack_observables
-from harness.run.checkpoint import Checkpointer
-from harness.run.compile_clock import CompileClock
+from harness.equations import iid as iid_theory
+from harness.equations.sources import InitialState, predict
+from harness.runner.checkpoint import Checkpointer
+from harness.runner.compile_clock import CompileClock
 from harness.sim import simulation
 from harness.sim.engines import engine_of
 from harness.sim.initial import initial_state
-from harness.theory import iid as iid_theory
-from harness.theory.sources import InitialState, predict
 
 ProgressFn = Callable[[int, int], None]
 
@@ -58,7 +58,7 @@ def simulate(
     """Train every seed's student and record observables at the evaluation times.
 
     With ``checkpoint_dir``, the state is saved there every ``run.checkpoint_minutes``
-    and a matching checkpoint found there is resumed from (:mod:`harness.run.checkpoint`);
+    and a matching checkpoint found there is resumed from (:mod:`harness.runner.checkpoint`);
     the results are bit-identical either way.
     """
     # run.engine: "full" trains the weights, "chain" steps the order parameters exactly; same interface.
@@ -136,7 +136,7 @@ def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarra
     """Solve the theory alone from the initial conditions a run would draw.
 
     Returns ``(t, start, values [S, E, O], clock)``; ``clock`` splits the theory's time
-    into compiling and solving (:class:`~harness.run.compile_clock.CompileClock`).
+    into compiling and solving (:class:`~harness.runner.compile_clock.CompileClock`).
     """
     sim = simulation.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)

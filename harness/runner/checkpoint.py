@@ -1,7 +1,7 @@
 """Checkpoints of a long simulation, so an interrupted run resumes where it stopped.
 
 A run that takes hours should not start over because its machine went away. While it
-simulates, :func:`harness.run.experiment.simulate` hands its state to a :class:`Checkpointer`
+simulates, :func:`harness.runner.experiment.simulate` hands its state to a :class:`Checkpointer`
 after every evaluation; at most every ``run.checkpoint_minutes`` (0: never) the
 checkpointer writes everything needed to continue exactly:
 

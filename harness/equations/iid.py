@@ -10,7 +10,7 @@ a = (v_1..K, -vt_1..M), Delta = sum_c a_c g_c(u_c):
   dQ_kl/dt = -eta v_k H[l, k] - eta v_l H[k, l] + eta^2 v_k v_l J[k, l]
   dv_k/dt  = -eta_v sum_c a_c I2(k, c)                     (second layer trained only)
 
-The system is integrated by :func:`harness.theory.ode_solve.integrate` (diffrax's Tsit5 at the
+The system is integrated by :func:`harness.equations.ode_solve.integrate` (diffrax's Tsit5 at the
 scenario's rtol/atol), saved at the evaluation times, one solve per seed, vmapped over
 seeds, in float64.
 """
@@ -25,8 +25,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from harness.core.scenario import Scenario
-from harness.theory.gaussian_averages import gaussian_averages, generalisation_error
-from harness.theory.ode_solve import integrate
+from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
+from harness.equations.ode_solve import integrate
 
 Array = jax.Array
 

@@ -26,7 +26,7 @@ binned into ``theory.bins`` equal-probability bins, and t(rho) = gamma (rho - ka
 It is paired with the seed through its exact Q, R, T and student norms (see
 :func:`thermodynamic_spectra`).
 
-Every solve is :func:`harness.theory.ode_solve.integrate` (diffrax's Tsit5) at the scenario's rtol
+Every solve is :func:`harness.equations.ode_solve.integrate` (diffrax's Tsit5) at the scenario's rtol
 and atol, one solve per seed (vmapped), float64, compiled once per shape and settings.
 """
 
@@ -47,9 +47,9 @@ from harness.core.keys import Key
 from harness.core.scenario import Scenario, ScenarioError, declare_keys, register_check
 from harness.data import feature_covariance
 from harness.data.latent import LATENT_KINDS
-from harness.theory import iid as iid_theory
-from harness.theory.ode_solve import integrate
-from harness.theory.sources import InitialState, Prediction, register_builtin_theory, values_from_order_parameters
+from harness.equations import iid as iid_theory
+from harness.equations.ode_solve import integrate
+from harness.equations.sources import InitialState, Prediction, register_builtin_theory, values_from_order_parameters
 
 Array = jax.Array
 
@@ -118,7 +118,7 @@ def projected_vector_field(
 def _compiled_solver(static: iid_theory.Dynamics, rtol: float, atol: float, max_steps: int):
     """The seed-vmapped, jit-compiled solve for one set of static settings (compiled per shape).
 
-    The rates are run-time inputs (:func:`harness.theory.iid.split_rates`).
+    The rates are run-time inputs (:func:`harness.equations.iid.split_rates`).
     """
 
     def one(spec: Spectrum, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array, rates: Array):

@@ -5,7 +5,7 @@
 
     * ``scenario``: the resolved scenario (a nested ``dict``, every default filled in; a
       copy, so changing it has no effect);
-    * ``start``: :class:`harness.theory.sources.InitialState`, every seed's initial
+    * ``start``: :class:`harness.equations.sources.InitialState`, every seed's initial
       conditions in float64 with a leading seed axis S: ``start.order_parameters`` holds
       ``Q [S, K, K]``, ``R [S, K, M]``, ``T [S, M, M]`` and ``v [S, K]`` (docs/equations.md, section 2),
       ``start.teacher_v [S, M]``, the weights ``start.student_w [S, K, N]`` and
@@ -64,7 +64,7 @@ from harness.core.errors import InputError
 from harness.core.scenario import Scenario, ScenarioError
 from harness.core.trajectories import observable_names
 from harness.core.user_code import describe_error, load_user_callable
-from harness.theory.sources import InitialState, Prediction, register_source
+from harness.equations.sources import InitialState, Prediction, register_source
 
 FILE_SUFFIXES = {".csv": "CSV", ".parquet": "Parquet", ".pq": "Parquet"}
 TIME_TOLERANCE = 1e-9
@@ -297,7 +297,7 @@ def register_theory(name: str, theory: Callable[..., Any]) -> None:
     Args:
         name: the name scenarios use (not "builtin", "none", or one starting "python:" / "file:").
         theory: ``theory(scenario, start, times)`` returning a ``{observable: [S, E] or [E]}``
-            mapping or a :class:`~harness.theory.sources.Prediction` (as a ``python:`` theory).
+            mapping or a :class:`~harness.equations.sources.Prediction` (as a ``python:`` theory).
     """
     if name in ("builtin", "none") or ":" in name or not name.strip():
         raise ValueError(f"theory name {name!r}: must be a plain name, not 'builtin', 'none' or contain ':'")

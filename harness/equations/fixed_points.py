@@ -1,7 +1,7 @@
 """Fixed points of the i.i.d. order-parameter equations and their stability (docs/equations.md, section 4).
 
 The learning curve of a two-layer network trained by online SGD is organised by the fixed
-points of the order-parameter flow dy/dt = F(y) of :func:`harness.theory.iid.vector_field`:
+points of the order-parameter flow dy/dt = F(y) of :func:`harness.equations.iid.vector_field`:
 a student started with small weights drifts to an *unspecialised* fixed point, where every
 student unit has the same overlaps with the teacher (the plateau), leaves it along an
 unstable direction that breaks the symmetry between student units (the escape), and converges
@@ -118,10 +118,10 @@ import numpy as np
 
 from harness.core.errors import InputError
 from harness.core.scenario import Scenario
-from harness.theory import iid as iid_theory
-from harness.theory.gaussian_averages import generalisation_error
-from harness.theory.ode_solve import integrate
-from harness.theory.sources import warn_if_not_plain_sgd
+from harness.equations import iid as iid_theory
+from harness.equations.gaussian_averages import generalisation_error
+from harness.equations.ode_solve import integrate
+from harness.equations.sources import warn_if_not_plain_sgd
 
 Array = jax.Array
 

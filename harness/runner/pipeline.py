@@ -25,8 +25,8 @@ from harness.results import comparison
 from harness.results.judgement import Margin
 from harness.results.store import append_index_row, is_complete_run, write_run_folder
 from harness.results.stored import divergence_times, judgement_record
-from harness.run.checkpoint import checkpoint_folder, discard_checkpoint
-from harness.run.experiment import ProgressFn, run_experiment, theory_only, theory_timings
+from harness.runner.checkpoint import checkpoint_folder, discard_checkpoint
+from harness.runner.experiment import ProgressFn, run_experiment, theory_only, theory_timings
 
 PACKAGES = ("harness", "numpy", "jax", "jaxlib", "optax", "diffrax", "equinox", "pandas", "pyarrow", "scipy")
 
