@@ -74,7 +74,10 @@ def index_row(
     row.update(scenario_lib.flatten(scenario))
     judgement = comp.judgement
     row["verdict"] = judgement.verdict
-    row["verdict.seeds_needed"] = float(judgement.seeds_needed)
+    # NaN also where no number of seeds would settle it (with verdict "inconclusive"), as in
+    # judgement.json: the row must read back the same through strict JSON (a sweep's set-aside row)
+    needed = float(judgement.seeds_needed)
+    row["verdict.seeds_needed"] = needed if np.isfinite(needed) else float("nan")
     for group in judgement.groups:
         row[f"verdict.{group.group}"] = group.verdict
     test = comp.metrics[comp.metrics["observable"] == "test_error"]
