@@ -95,13 +95,14 @@ import numpy as np
 
 from harness.activations import NETWORK_ACTIVATIONS, Activation, get_activation
 from harness.errors import InputError
+from harness.relu_averages import relu_averages
 
 Array = jax.Array
 
 METHODS: tuple[str, ...] = ("auto", "closed_form", "quadrature")
 """Routes accepted by ``method=``: "auto" uses a closed form when one exists."""
 
-CLOSED_FORM_PAIRS: tuple[str, ...] = ("erf", "linear")
+CLOSED_FORM_PAIRS: tuple[str, ...] = ("erf", "linear", "relu")
 """Activations with closed forms when student and teacher share them."""
 
 KINKED_ACTIVATIONS: frozenset[str] = frozenset({"relu", "sign"})
@@ -641,6 +642,8 @@ def _averages(
     """Jitted core: compiled once per static configuration, so eager callers do not pay
     op-by-op dispatch (thousands of small ops) and jitted callers simply inline it."""
     if closed:
+        if student == "relu":
+            return relu_averages(cov, K, outputs)
         if student == "linear":
             averages = _linear_closed_form(cov, K)
         elif outputs == ("I2",):  # the pair kernel alone, without the I3/I4 tensors

@@ -260,10 +260,11 @@ def test_relu_pair_and_noise_averages_match_the_arc_cosine_kernels():
         t = np.arccos(cos_t)
         relu_kernel = np.outer(sd, sd) / (2.0 * math.pi) * (np.sin(t) + (math.pi - t) * cos_t)
         step_kernel = (math.pi - t) / (2.0 * math.pi)
-        avg = gaussian_averages(jnp.asarray(cov), 2, "relu", "relu")
-        np.testing.assert_allclose(np.asarray(avg.I2), relu_kernel, atol=1e-7)
-        if np.all(sd[:2] > 0):  # the step of an identically zero variable is a convention
-            np.testing.assert_allclose(np.asarray(avg.J0), step_kernel[:2, :2], atol=1e-6)
+        for method in ("auto", "quadrature"):  # closed forms (harness/relu_averages.py) and quadrature
+            avg = gaussian_averages(jnp.asarray(cov), 2, "relu", "relu", method=method)
+            np.testing.assert_allclose(np.asarray(avg.I2), relu_kernel, atol=1e-7)
+            if np.all(sd[:2] > 0):  # the step of an identically zero variable is a convention
+                np.testing.assert_allclose(np.asarray(avg.J0), step_kernel[:2, :2], atol=1e-6)
 
 
 @pytest.mark.parametrize("student, teacher", [("tanh", "tanh"), ("relu", "relu")])
@@ -271,8 +272,8 @@ def test_quadrature_converges_to_itself(student, teacher):
     # Default points against 40 per dimension at unit diagonal, K = 2, M = 1 (averages of
     # up to three dimensions): the accuracy the module docstring states.
     cov = jnp.asarray(random_covariance(np.random.default_rng(7), 3, 1.0))
-    default = gaussian_averages(cov, 2, student, teacher)
-    fine = gaussian_averages(cov, 2, student, teacher, points=40)
+    default = gaussian_averages(cov, 2, student, teacher, method="quadrature")
+    fine = gaussian_averages(cov, 2, student, teacher, points=40, method="quadrature")
     assert max_abs_difference(default, fine) < 3e-7
 
 
