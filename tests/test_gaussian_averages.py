@@ -306,6 +306,7 @@ def test_jit_and_vmap_over_a_batch_of_covariances():
         ({"K": 5}, "K must be"),
         ({"method": "magic"}, "method 'magic'"),
         ({"student": "tanh", "method": "closed_form"}, "closed_form"),
+        ({"student": "relu", "method": "erf_sum"}, "erf_sum"),
         ({"points": 1}, "points must be"),
     ],
 )
