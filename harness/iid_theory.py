@@ -118,7 +118,7 @@ def with_rates(static: Dynamics, rates: Array) -> Dynamics:
 
 
 @functools.cache
-def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int, seeds: int):
+def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int, seeds: int = 1):
     """The vmapped, jitted solve for one set of static settings, built once per process.
 
     Evaluation times and rates are arguments, so runs with the same activations, sizes and
@@ -134,8 +134,8 @@ def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int,
         (Q, R, v), _ = integrate(field, (Q0, R0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps)
         return Q, R, jnp.broadcast_to(T, ts.shape + T.shape), v
 
-    batched = jax.vmap(one, in_axes=(0, 0, 0, 0, 0, None, None))
-    return jax.jit(split_over_seeds(batched, seeds, replicated=2))
+    split = split_over_seeds(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, None, None)), seeds, replicated=2)
+    return jax.jit(lambda ts, rates, Q0, R0, T, v0, vt: split(Q0, R0, T, v0, vt, ts, rates))
 
 
 def solve(
@@ -157,7 +157,7 @@ def solve(
     static, rates = split_rates(dyn)
     solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps), int(np.shape(initial.Q)[0]))
     Q, R, T, v = solver(
-        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v), f64(times), f64(rates)
+        f64(times), f64(rates), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
     )
     return OrderParameters(Q, R, T, v)
 
