@@ -34,7 +34,8 @@ term gains only a factor ~5-8 (the accuracy table of harness/gaussian_averages.p
 what this means for the averages and the trajectories).
 
 Cost: the four-index average I4 needs (nK)^2 (nP)^2 / 4 erf terms (pairs of virtual units
-that differ only by order are computed once), n^4 / 4 times the erf network's count.
+that differ only by order are computed once), n^4 / 4 times the erf network's count;
+arcsin is the polynomial of harness/fast_arcsin.py, 4x faster than XLA's on CPU.
 """
 
 from __future__ import annotations
@@ -46,6 +47,8 @@ from typing import NamedTuple
 import jax
 import jax.numpy as jnp
 import numpy as np
+
+from harness.fast_arcsin import arcsin
 
 Array = jax.Array
 
@@ -171,7 +174,6 @@ def expanded_averages(cov: Array, K: int, student: str, teacher: str, outputs: t
     virtual = B @ cov @ B.T  # [V, V]
     diag = jnp.diagonal(virtual)
     one_plus = 1.0 + diag
-    arcsin = lambda x: jnp.arcsin(jnp.clip(x, -1.0, 1.0))  # noqa: E731 - rounding can leave [-1, 1]
     A = jnp.asarray(net.value_weights, dtype)
     D = jnp.asarray(net.slope_weights, dtype)
     offsets = jnp.asarray(net.offsets, dtype)
@@ -214,7 +216,7 @@ def expanded_averages(cov: Array, K: int, student: str, teacher: str, outputs: t
         L0 = L4 * e34 - e23 * e24 * (1.0 + e11) - e13 * e14 * (1.0 + e22) + e12 * e13 * e24 + e12 * e14 * e23
         L1 = L4 * (1.0 + e33) - e23**2 * (1.0 + e11) - e13**2 * (1.0 + e22) + 2.0 * e12 * e13 * e23
         L2 = L4 * (1.0 + e44) - e24**2 * (1.0 + e11) - e14**2 * (1.0 + e22) + 2.0 * e12 * e14 * e24
-        I4_v = (4.0 / math.pi**2) / jnp.sqrt(L4) * arcsin(L0 / jnp.sqrt(L1 * L2))  # [Ps, Pa]
+        I4_v = (4.0 / math.pi**2) * jax.lax.rsqrt(L4) * arcsin(L0 * jax.lax.rsqrt(L1 * L2))  # [Ps, Pa]
         I4 = (jnp.asarray(net.student_pair_weights.T, dtype) @ I4_v @ jnp.asarray(net.all_pair_weights, dtype))
         I4 = I4.reshape(K, K, P, P) + J0[:, :, None, None] * (offsets[:, None] * offsets[None, :])[None, None]
         out["I4"] = I4

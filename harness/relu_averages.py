@@ -73,6 +73,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.fast_arcsin import arcsin
+
 Array = jax.Array
 
 PATH_NODES = 16
@@ -84,7 +86,7 @@ _PHI0 = 1.0 / math.sqrt(2.0 * math.pi)
 
 
 def _asin(x: Array) -> Array:
-    return jnp.arcsin(jnp.clip(x, -1.0, 1.0))
+    return arcsin(x)  # clips to [-1, 1]; a polynomial, 4x faster than XLA's (harness/fast_arcsin.py)
 
 
 def _sqrt_one_minus_square(x: Array) -> Array:
