@@ -109,10 +109,9 @@ def _select(matrix: Array, rows: np.ndarray, cols: np.ndarray) -> Array:
     XLA on CPU fuses a gather with the elementwise work around it badly (measured: a
     225-entry gather at the end of I4 tripled its cost); a dot is never fused that way.
     """
-    n = matrix.shape[-1]
     onehot = np.zeros((matrix.size, rows.size), np.float64)
     onehot[np.ravel_multi_index((rows.ravel(), cols.ravel()), matrix.shape), np.arange(rows.size)] = 1.0
-    return (matrix.reshape(-1) @ jnp.asarray(onehot, matrix.dtype)).reshape(rows.shape) if n else matrix
+    return (matrix.reshape(-1) @ jnp.asarray(onehot, matrix.dtype)).reshape(rows.shape)
 
 
 def _safe_divide(numerator: Array, denominator: Array) -> Array:
