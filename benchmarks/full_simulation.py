@@ -28,8 +28,8 @@ import numpy as np
 from scipy.special import erf
 
 from benchmarks import Timing, row
+from harness.core import devices, threefry
 from harness.core import scenario as scenario_lib
-from harness.core import threefry
 from harness.runner import experiment
 from harness.sim import simulation
 
@@ -92,7 +92,7 @@ def make_floor(steps: int, **overrides):
 
         return jax.lax.fori_loop(0, blocks, body, jnp.zeros(train_key.shape[0], sim.dtype))
 
-    split = simulation.split_over_seeds(shard, s["run"]["seeds"])
+    split = devices.split_over_seeds(shard, s["run"]["seeds"])
     compiled = jax.jit(split).lower(instance.train_key).compile()
     return compiled, (instance.train_key,), blocks * block
 

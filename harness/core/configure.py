@@ -9,7 +9,7 @@ It sets, unless told otherwise:
   computed in float64; simulations choose their own dtype explicitly (``run.dtype``), so
   this changes no default draw;
 * one XLA CPU device per core the process may use (``jax_num_cpu_devices``), so an
-  ensemble's seeds train in parallel (harness.sim.simulation.seed_mesh). This only takes
+  ensemble's seeds train in parallel (harness.core.devices.seed_mesh). This only takes
   effect before JAX has started its backends; when it is too late a one-line warning says so;
 * the persistent compilation cache (``jax_compilation_cache_dir``), so a second run of the
   same shapes skips most compilation;

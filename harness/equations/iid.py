@@ -24,6 +24,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.core.devices import split_over_seeds
 from harness.core.scenario import Scenario
 from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
 from harness.equations.ode_solve import integrate
@@ -117,21 +118,24 @@ def with_rates(static: Dynamics, rates: Array) -> Dynamics:
 
 
 @functools.cache
-def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int):
+def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int, seeds: int = 1):
     """The vmapped, jitted solve for one set of static settings, built once per process.
 
     Evaluation times and rates are arguments, so runs with the same activations, sizes and
     tolerances (the sizes of a finite-size scan, the learning rates of a sweep, baseline
-    checks) compile once per shape instead of once per call.
+    checks) compile once per shape instead of once per call. The seeds are split across the
+    host's XLA devices (one per core) exactly as the simulator splits them
+    (harness.core.devices.split_over_seeds): each device solves its share in its own loop.
     """
 
-    def one(ts: Array, rates: Array, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array):
+    def one(Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array, rates: Array):
         dyn = with_rates(static, rates)
         field = lambda t, y: vector_field(dyn, y, T, vt)  # noqa: E731
         (Q, R, v), _ = integrate(field, (Q0, R0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps)
         return Q, R, jnp.broadcast_to(T, ts.shape + T.shape), v
 
-    return jax.jit(jax.vmap(one, in_axes=(None, None, 0, 0, 0, 0, 0)))
+    split = split_over_seeds(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, None, None)), seeds, replicated=2)
+    return jax.jit(lambda ts, rates, Q0, R0, T, v0, vt: split(Q0, R0, T, v0, vt, ts, rates))
 
 
 def solve(
@@ -151,7 +155,7 @@ def solve(
     """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
     static, rates = split_rates(dyn)
-    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps))
+    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps), int(np.shape(initial.Q)[0]))
     Q, R, T, v = solver(
         f64(times), f64(rates), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
     )

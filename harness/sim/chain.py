@@ -62,7 +62,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness.core import threefry
+from harness.core import devices, threefry
 from harness.core.activations import get_activation
 from harness.core.scenario import Scenario
 from harness.equations import iid as iid_theory
@@ -139,7 +139,7 @@ def init_ensemble(chain: Chain, seed_indices: np.ndarray | None = None) -> tuple
     instance = ChainInstance(f64(ops.T), f64(start.teacher_v), train_key)
     params = {"Q": f64(ops.Q), "R": f64(ops.R), "v": f64(ops.v)}
     state = State(params, (), jnp.zeros(len(seed_indices), jnp.int64))
-    return simulation.place_on_devices((instance, state), len(seed_indices))
+    return devices.place_on_devices((instance, state), len(seed_indices))
 
 
 # ------------------------------------------------------------------------------ step
@@ -277,7 +277,7 @@ def make_advance(chain: Chain):
         return State(params, state.opt_state, jnp.full_like(state.step, jnp.maximum(start, target)))
 
     def advance(instance: ChainInstance, state: State, target: Array) -> State:
-        return simulation.split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
+        return devices.split_over_seeds(advance_shard, state.step.shape[0], replicated=1)(instance, state, target)
 
     return jax.jit(advance, donate_argnums=(1,))
 
@@ -297,7 +297,7 @@ def make_observe(chain: Chain):
     observe_shard = jax.vmap(observe_one)
 
     def observe(instance: ChainInstance, state: State) -> simulation.Observation:
-        return simulation.split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
+        return devices.split_over_seeds(observe_shard, state.step.shape[0])(instance, state)
 
     return jax.jit(observe)
 
