@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness.cli.main import print_run_summary
+from harness.cli.run import print_run_summary
 from harness.core import scenario as scenario_lib
 from harness.core.scenario import ScenarioError
 from harness.data import feature_covariance
