@@ -74,7 +74,7 @@ def machine() -> dict[str, Any]:
         pass
     import jax
 
-    from harness.pipeline import package_versions  # the versions a run's manifest records
+    from harness.runner.pipeline import package_versions  # the versions a run's manifest records
 
     versions = package_versions()
     return {

@@ -1,6 +1,6 @@
 """``python -m benchmarks [--sections a,b] [--json FILE] [--wait-idle SECONDS]``: one table, one run.
 
-Sections (all by default, in this order): full, blocks, chain, solvers, end_to_end, and the
+Sections (all by default, in this order): full, blocks, chain, solvers, end_to_end, theory_speed, and the
 modules other parts of the harness add (latent, sweep) when present. Each prints its rows
 as soon as it is done; the whole table is printed at the end with the machine's description.
 """
@@ -23,6 +23,7 @@ SECTIONS: dict[str, tuple[str, str]] = {
     "chain": ("benchmarks.chain", "run"),
     "solvers": ("benchmarks.solvers", "run"),
     "end_to_end": ("benchmarks.end_to_end", "run"),
+    "theory_speed": ("benchmarks.theory_speed", "run"),
     "latent": ("benchmarks.latent", "run"),
     "sweep": ("benchmarks.sweep", "run"),
     "calibration": ("benchmarks.calibration", "run"),

@@ -1,9 +1,9 @@
 """How often the verdict errs: its rates over many replicate ensembles (python -m benchmarks --sections calibration).
 
-One large ensemble of the exact order-parameter chain (harness.chain: exact in law at any N,
+One large ensemble of the exact order-parameter chain (harness.sim.chain: exact in law at any N,
 so thousands of seeds cost seconds; K = M = 1 erf, eta = 1.5, N = 500, t = 5, 10 evaluation
 times) is cut into replicate ensembles of S seeds and each is judged as ``harness run`` would
-judge it (harness.judgement, default margin 5 %, alpha = 0.05), against
+judge it (harness.results.judgement, default margin 5 %, alpha = 0.05), against
 
 * the built-in theory: correct, so "disagree" is an error;
 * the same equations without their eta^2 term: wrong by far more than the margin, so
@@ -20,11 +20,13 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from harness import experiment, simulation
-from harness import scenario as sc
-from harness.judgement import Margin, judge
-from harness.paired_theory import builtin_iid, initial_state
-from harness.trajectories import Trajectories
+from harness.core import scenario as sc
+from harness.core.trajectories import Trajectories
+from harness.equations.sources import builtin_iid
+from harness.results.judgement import Margin, judge
+from harness.runner import experiment
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 SEED_COUNTS = (3, 8, 16, 32, 64)
 ENSEMBLE_SEEDS = 12_800

@@ -12,8 +12,8 @@ import jax
 import jax.numpy as jnp
 
 from benchmarks import Timing, row
-from harness import chain, simulation
-from harness import scenario as scenario_lib
+from harness.core import scenario as scenario_lib
+from harness.sim import chain, simulation
 
 N, SEEDS = 100_000, 16
 NAME = "chain vs full"

@@ -10,7 +10,7 @@ theory, tables, storage):
 Wall time of the whole command (aim <= 60 s) and the run manifest's timings: compile_s
 (drawing the instances and compiling the simulator), simulation_s (compilation excluded),
 theory_s (the theory's solve, compilation excluded) and theory_compile_s (tracing and
-compiling the diffrax solve, measured by harness.compile_clock).
+compiling the diffrax solve, measured by harness.runner.compile_clock).
 """
 
 from __future__ import annotations

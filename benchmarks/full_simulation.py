@@ -6,7 +6,7 @@ Scenario: i.i.d. Gaussian inputs, N = 500, K = M = 2, erf, 16 seeds, float32 (is
   samples so that measuring costs nothing), sample-steps per second = steps x seeds /
   ``simulation_s`` (compilation excluded, as the run manifest reports it).
 * (b) ``floor``: drawing the very same inputs and nothing else: the same per-step keys
-  (``fold_in(train_key, step)``, split), the same generator (``harness.threefry``, the
+  (``fold_in(train_key, step)``, split), the same generator (``harness.core.threefry``, the
   bits of ``jax.random.normal``), dtype, block size and split of the seeds across devices,
   summed into a checksum so that nothing is optimised away. Also, for reference, stock
   ``jax.random.normal`` drawing the same count in large calls.
@@ -28,8 +28,10 @@ import numpy as np
 from scipy.special import erf
 
 from benchmarks import Timing, row
-from harness import experiment, simulation, threefry
-from harness import scenario as scenario_lib
+from harness.core import devices, threefry
+from harness.core import scenario as scenario_lib
+from harness.runner import experiment
+from harness.sim import simulation
 
 N, K, M, SEEDS = 500, 2, 2, 16
 NAME = "full simulation"
@@ -90,7 +92,7 @@ def make_floor(steps: int, **overrides):
 
         return jax.lax.fori_loop(0, blocks, body, jnp.zeros(train_key.shape[0], sim.dtype))
 
-    split = simulation.split_over_seeds(shard, s["run"]["seeds"])
+    split = devices.split_over_seeds(shard, s["run"]["seeds"])
     compiled = jax.jit(split).lower(instance.train_key).compile()
     return compiled, (instance.train_key,), blocks * block
 
@@ -110,7 +112,7 @@ def stock_normal_rate(samples: int, n: int = N) -> Timing:
 
 
 def numpy_loop(steps: int, seeds: int = 2, n: int = N, eta: float = 0.5) -> Callable[[], None]:
-    """Plain per-sample online SGD in NumPy (notes, section 1), seed after seed: the loop to time."""
+    """Plain per-sample online SGD in NumPy (docs/equations.md, section 1), seed after seed: the loop to time."""
     rng = np.random.default_rng(0)
     sqrt_n, root2, slope = math.sqrt(n), math.sqrt(2.0), math.sqrt(2.0 / math.pi)
 

@@ -32,9 +32,13 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import iid_theory, latent_theory, simulation, threefry
-from harness import scenario as scenario_lib
-from harness.paired_theory import initial_state
+from harness.core import scenario as scenario_lib
+from harness.core import threefry
+from harness.core import times as time_grid
+from harness.equations import iid as iid_theory
+from harness.equations import latent as latent_theory
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 N, D, K, M, SEEDS = 1000, 500, 2, 2, 16
 
@@ -121,7 +125,7 @@ def projected_solve(seeds: int = 4, time_: float = 100.0) -> list[dict]:
     started = time.perf_counter()
     spectra = latent_theory.exact_spectra(start)
     eigen_s = (time.perf_counter() - started) / seeds
-    times = simulation.evaluation_steps(scenario) / N
+    times = time_grid.evaluation_steps(scenario) / N
     dyn = iid_theory.dynamics_of(scenario)
 
     def solve():

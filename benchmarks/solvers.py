@@ -1,6 +1,6 @@
 """The i.i.d. order-parameter ODE: the harness's diffrax solve against scipy's solve_ivp.
 
-Problem (issue 7): notes section 3, K = M = 2, erf, learning rate 0.5, integrated to t = 1000
+Problem (issue 7): docs/equations.md, section 4, K = M = 2, erf, learning rate 0.5, integrated to t = 1000
 with 200 save points (t = 0 and 199 log-spaced times from 0.1), 16 seeds, each from its own
 initial (Q, R, T, v) as a run would draw them, rtol 1e-6, atol 1e-9.
 
@@ -23,9 +23,10 @@ import numpy as np
 from scipy.integrate import solve_ivp
 
 from benchmarks import Timing, load_average, row
-from harness import iid_theory, simulation
-from harness import scenario as scenario_lib
-from harness.paired_theory import initial_state
+from harness.core import scenario as scenario_lib
+from harness.equations import iid as iid_theory
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 K, M, SEEDS, ETA, RTOL, ATOL = 2, 2, 16, 0.5, 1e-6, 1e-9
 NAME = "i.i.d. ODE solve"
@@ -36,7 +37,7 @@ def times() -> np.ndarray:
 
 
 def _erf_averages(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """I3 [K, P, P] and I4 [K, K, P, P] for erf(x / sqrt 2) units (notes, section 2, Saad & Solla 1995)."""
+    """I3 [K, P, P] and I4 [K, K, P, P] for erf(x / sqrt 2) units (docs/equations.md, section 2, Saad & Solla 1995)."""
     d = np.diagonal(cov)
     c11, c12, c13 = d[:K, None, None], cov[:K, :, None], cov[:K, None, :]
     c23, c33 = cov[None, :, :], d[None, None, :]
@@ -56,7 +57,7 @@ def _erf_averages(cov: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 def numpy_vector_field(T: np.ndarray, v: np.ndarray, vt: np.ndarray):
-    """d(Q, R)/dt of notes section 3 (second layer fixed, no noise) on a flat state."""
+    """d(Q, R)/dt of docs/equations.md, section 4 (second layer fixed, no noise) on a flat state."""
     a = np.concatenate([v, -vt])
 
     def rhs(t: float, y: np.ndarray) -> np.ndarray:

@@ -27,7 +27,7 @@ import tempfile
 import time
 from pathlib import Path
 
-from harness import sweep
+from harness.studies import sweep
 
 SWEEP_TEXT = """
 [data]

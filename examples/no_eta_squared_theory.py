@@ -10,7 +10,7 @@ built-in theory comes out consistent. It is not a theory to use.
     source = "python:examples.no_eta_squared_theory:predict"
 
 (run from the repository root, or with this folder's parent on the Python path).
-The drift and the overlap error are the built-in ones (harness.iid_theory), solved per seed
+The drift and the overlap error are the built-in ones (harness.equations.iid), solved per seed
 from that seed's initial conditions, so the comparison is paired.
 """
 
@@ -18,8 +18,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from harness.paired_theory import InitialState, builtin_iid
-from harness.trajectories import observable_names
+from harness.core.trajectories import observable_names
+from harness.equations.sources import InitialState, builtin_iid
 
 
 def predict(scenario: dict, start: InitialState, times: np.ndarray) -> dict[str, np.ndarray]:

@@ -7,7 +7,7 @@ with a fixed mean vector mu of norm |mu| = SEPARATION * sqrt(N) along a random d
 are SEPARATION * sqrt(N) apart against unit noise, so a student's local field
 lambda = w . x / sqrt(N) = s (w . mu) / sqrt(N) + Gaussian is bimodal at O(1): the inputs
 are not Gaussian, and the overlap error (the Gaussian formula evaluated at the measured
-Q, R, T) need not match the measured test error (notes, section 5).
+Q, R, T) need not match the measured test error (docs/equations.md, section 5.9).
 
 Two factories (see README.md for the protocol):
 
@@ -25,7 +25,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness.user_data import UserData
+from harness.data.user import UserData
 
 SEPARATION = 1.0
 """|mu| / sqrt(N): the half-distance between the clusters in units of the noise, times sqrt(N)."""

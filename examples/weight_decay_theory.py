@@ -12,7 +12,7 @@ Over one unit of t = steps / N the extra term adds, to leading order in 1/N
 
   dQ_kl/dt += -2 eta kappa Q_kl,   dR_km/dt += -eta kappa R_km,   dv_k/dt += -eta_v kappa v_k.
 
-Everything else is the built-in section-3 field, reused from :mod:`harness.iid_theory`.
+Everything else is the built-in section-3 field, reused from :mod:`harness.equations.iid`.
 """
 
 from __future__ import annotations
@@ -22,8 +22,8 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import iid_theory
-from harness.paired_theory import InitialState
+from harness.equations import iid as iid_theory
+from harness.equations.sources import InitialState
 
 
 def decayed_field(dyn: iid_theory.Dynamics, kappa: float, state, T, teacher_v):

@@ -2,7 +2,7 @@
 
 The figure and report tests should not pay for a simulation, so these helpers make up the
 trajectories and let the tool's own code do the rest: a run folder is judged and written by
-harness.pipeline (scenario.toml, manifest.json, judgement.json and the Parquet tables); a
+harness.runner.pipeline (scenario.toml, manifest.json, judgement.json and the Parquet tables); a
 scaling folder holds verdict.json; a sweep folder sweep.json and runs.parquet.
 
 The numbers are made up but shaped like the real thing: a generalisation error that
@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from harness.trajectories import observable_names
+from harness.core.trajectories import observable_names
 
 
 def _theory_curves(
@@ -77,7 +77,7 @@ def write_run_folder(
     """Write one run folder ``root/run_id`` of synthetic trajectories and return its path.
 
     Only the trajectories are made up; the comparison, the verdict and every file come from
-    the tool's own code (harness.pipeline.computed_run and store_run), so the figure and
+    the tool's own code (harness.runner.pipeline.computed_run and store_run), so the figure and
     report tests read exactly the format the writer produces.
 
     ``theory_bias`` multiplies the theory's test error by (1 + bias * late) where late rises
@@ -85,9 +85,9 @@ def write_run_folder(
     ``gaussian_equivalence_gap`` shifts the measured test error away from the overlap error
     (what a failing Gaussian equivalence looks like).
     """
-    from harness import scenario as scenario_lib
-    from harness.pipeline import computed_run, store_run
-    from harness.trajectories import from_frame
+    from harness.core import scenario as scenario_lib
+    from harness.core.trajectories import from_frame
+    from harness.runner.pipeline import computed_run, store_run
 
     rng = np.random.default_rng(rng_seed)
     grid = np.concatenate([[0.0], np.geomspace(1.0 / input_dim, t_max, times - 1)])

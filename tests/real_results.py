@@ -75,7 +75,7 @@ class InProcessExecutor:
         pass
 
     def submit(self, task):
-        from harness.sweep import compute_point
+        from harness.studies.sweep import compute_point
 
         return self._pool.submit(compute_point, task)
 
@@ -90,7 +90,7 @@ class InProcessExecutor:
         return True
 
     def outcome(self, handle):
-        from harness.sweep import Outcome
+        from harness.studies.sweep import Outcome
 
         try:
             return Outcome("ok", handle.result())
@@ -118,9 +118,9 @@ def real_results() -> RealResults:
     import contextlib
     import io
 
-    from harness import scaling, sweep
-    from harness import scenario as scenario_lib
-    from harness.cli import main
+    from harness.cli.main import main
+    from harness.core import scenario as scenario_lib
+    from harness.studies import scaling, sweep
 
     base = Path(tempfile.mkdtemp(prefix="harness-real-results-"))
     atexit.register(shutil.rmtree, base, True)

@@ -9,10 +9,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import baselines
-from harness.baselines import Tolerance, ToleranceTable, assert_matches_baseline
-from harness.cli import main
-from harness.scenario import load, resolve
+from harness.cli.main import main
+from harness.core.scenario import load, resolve
+from harness.studies import baselines
+from harness.studies.baselines import Tolerance, ToleranceTable, assert_matches_baseline
 
 REPO = Path(__file__).resolve().parents[1]
 COMMITTED = REPO / "results" / "baselines"
@@ -110,7 +110,7 @@ def test_saved_baseline_has_its_files(saved):
 
 
 def test_a_changed_equation_fails_the_check(saved, tmp_path, capsys, monkeypatch):
-    # Re-solving with the equations minus the eta^2 term (notes, section 3) must be caught.
+    # Re-solving with the equations minus the eta^2 term (docs/equations.md, section 4) must be caught.
     monkeypatch.chdir(REPO)
     moved = tmp_path / "tiny"
     shutil.copytree(saved, moved)

@@ -27,7 +27,7 @@ from typing import Any
 import pytest
 from real_results import real_results
 
-from harness import report
+from harness.plot import report
 
 FLAGS = (
     "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",

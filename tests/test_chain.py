@@ -1,4 +1,4 @@
-"""The exact order-parameter chain (harness.chain) against explicit weights and the full simulation."""
+"""The exact order-parameter chain (harness.sim.chain) against explicit weights and the full simulation."""
 
 from __future__ import annotations
 
@@ -10,10 +10,12 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from harness import chain, experiment, threefry
-from harness import scenario as sc
-from harness.activations import get_activation
-from harness.trajectories import observable_names
+from harness.core import scenario as sc
+from harness.core import threefry
+from harness.core.activations import get_activation
+from harness.core.trajectories import observable_names
+from harness.runner import experiment
+from harness.sim import chain
 
 
 def _scenario(**overrides: object) -> dict:
@@ -72,7 +74,7 @@ def _explicit_step(s: dict, W, Wt, v, vt, x, y_noise):
 @pytest.mark.parametrize("case", ["generic", "identical students", "students at zero"])
 def test_one_chain_step_is_the_sgd_step_of_weights_with_that_input(case):
     # Build an explicit input x whose projections and norm are those the chain draws
-    # (u = L z, |x|^2 = |z|^2 + chi2, see harness.chain), apply the notes' SGD step to
+    # (u = L z, |x|^2 = |z|^2 + chi2, see harness.sim.chain), apply the notes' SGD step to
     # explicit weights, and compare the resulting overlaps with the chain's step.
     s = _scenario(**{
         "data.input_dim": 12, "student.hidden": 2, "teacher.hidden": 2, "student.train_second_layer": True,

@@ -9,11 +9,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import scenario as scenario_lib
-from harness.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder
-from harness.experiment import simulate
-from harness.pipeline import run_and_store
-from harness.trajectories import Trajectories
+from harness.core import scenario as scenario_lib
+from harness.core.trajectories import Trajectories
+from harness.runner.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder
+from harness.runner.experiment import simulate
+from harness.runner.pipeline import run_and_store
 
 TINY = {
     "data": {"input_dim": 50},

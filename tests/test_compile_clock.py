@@ -6,9 +6,9 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness import iid_theory
-from harness import scenario as sc
-from harness.compile_clock import CompileClock, _union_length
+from harness.core import scenario as sc
+from harness.equations import iid as iid_theory
+from harness.runner.compile_clock import CompileClock, _union_length
 
 
 def test_union_of_nested_and_overlapping_spans_is_counted_once():

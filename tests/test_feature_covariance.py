@@ -1,4 +1,4 @@
-"""Moments of latent-variable inputs (harness/feature_covariance.py).
+"""Moments of latent-variable inputs (harness/data/feature_covariance.py).
 
 The closed forms and the quadrature are held against plain numpy Monte Carlo written
 here independently of the module (own feature maps, own sampling); every Monte Carlo
@@ -15,8 +15,8 @@ import numpy as np
 import pytest
 from scipy.special import erf as scipy_erf
 
-from harness.errors import InputError
-from harness.feature_covariance import (
+from harness.core.errors import InputError
+from harness.data.feature_covariance import (
     deep_generator_apply,
     deep_generator_init,
     deep_generator_moments,
@@ -28,11 +28,11 @@ from harness.feature_covariance import (
 )
 
 # Element-wise maps written with numpy/scipy only, so the references do not share code
-# with harness.activations.
+# with harness.core.activations.
 NUMPY_MAPS = {
     "sign": np.sign,
     "relu": lambda u: np.maximum(u, 0.0),
-    "erf": lambda u: scipy_erf(u / math.sqrt(2.0)),  # theory notes, section 1: g(x) = erf(x/sqrt2)
+    "erf": lambda u: scipy_erf(u / math.sqrt(2.0)),  # docs/equations.md, section 1: g(x) = erf(x/sqrt2)
     "tanh": np.tanh,
     "sigmoid": lambda u: 1.0 / (1.0 + np.exp(-u)),
     "linear": lambda u: u,
@@ -82,7 +82,7 @@ def _assert_within(estimate: np.ndarray, exact: np.ndarray, standard_error, sigm
     [
         "sign",  # Sheppard (1899): E[sign u_i sign u_j] = (2/pi) arcsin(rho_ij)
         "relu",  # Cho & Saul (2009), degree-1 arc-cosine kernel; E relu(u) = sqrt(C_ii / (2 pi))
-        "erf",  # arcsine kernel, Saad & Solla (1995) (theory notes, section 2, I2)
+        "erf",  # arcsine kernel, Saad & Solla (1995) (docs/equations.md, section 2, I2)
         "linear",  # Omega = C, common practice, no source
     ],
 )
@@ -219,7 +219,7 @@ def test_projection_recovers_order_parameters() -> None:
     np.testing.assert_allclose(projection.psi * projection.rho @ projection.psi.T, omega, atol=1e-12)
     Q, R, T = order_parameters(omega, phi, wt, w)
     q, r, t = eigen_overlaps(projection)
-    # theory notes, section 4: Q = (1/N) sum_tau rho_tau q(tau), R = (1/N) sum_tau r(tau)
+    # docs/equations.md, section 5: Q = (1/N) sum_tau rho_tau q(tau), R = (1/N) sum_tau r(tau)
     np.testing.assert_allclose(np.einsum("t,tkl->kl", projection.rho, q) / N, Q, rtol=1e-12, atol=1e-13)
     np.testing.assert_allclose(r.sum(axis=0) / N, R, rtol=1e-12, atol=1e-13)
     np.testing.assert_allclose(T, wt @ wt.T / D, rtol=1e-14)
@@ -228,7 +228,7 @@ def test_projection_recovers_order_parameters() -> None:
 
 
 def test_iid_order_parameters() -> None:
-    # theory notes, section 2: for i.i.d. data Omega = Phi = I and D = N
+    # docs/equations.md, section 2: for i.i.d. data Omega = Phi = I and D = N
     rng = np.random.default_rng(7)
     N = 10
     wt, w = rng.standard_normal((2, N)), rng.standard_normal((3, N))
@@ -239,7 +239,7 @@ def test_iid_order_parameters() -> None:
 
 
 def test_order_parameters_are_covariances_of_the_local_fields() -> None:
-    # theory notes, section 2: (lambda, nu) has covariance [[Q, R], [R^T, T]] with
+    # docs/equations.md, section 2: (lambda, nu) has covariance [[Q, R], [R^T, T]] with
     # lambda = w x / sqrt(N), nu = wt c / sqrt(D); checked on sampled sign features
     rng = np.random.default_rng(8)
     D, N, samples = 5, 7, 400_000

@@ -18,8 +18,8 @@ from matplotlib.collections import LineCollection
 from matplotlib.image import AxesImage
 from matplotlib.lines import Line2D
 
-from harness import figures
-from harness.figures_cli import add_figure_commands
+from harness.cli.figure import add_figure_commands
+from harness.plot import figures
 
 
 @pytest.fixture(autouse=True)

@@ -8,9 +8,11 @@ import math
 import numpy as np
 import pytest
 
-from harness import cli, iid_theory, landmarks
-from harness import fixed_points as fp
-from harness import scenario as sc
+from harness.cli.main import main
+from harness.core import scenario as sc
+from harness.equations import fixed_points as fp
+from harness.equations import iid as iid_theory
+from harness.results import landmarks
 
 # Tight tolerances for trajectories whose error is followed down to 1e-9 (eps is a difference of
 # O(1) Gaussian averages, so it needs the order parameters to ~1e-12). The solver is compiled once
@@ -43,7 +45,7 @@ def _trajectory(scenario: dict, Q0, R0, times, tolerances=TIGHT):
 #
 # Saad & Solla 1995 (Phys. Rev. E 52, 4225) and Biehl & Schwarze 1995 (J. Phys. A 28, 643): for one
 # student and one teacher unit, g(x) = erf(x / sqrt 2), T = 1 and v = vt = 1, the erf closed forms
-# of I3 and I4 (theory notes, section 2) give, with a = 2 / pi,
+# of I3 and I4 (docs/equations.md, section 2) give, with a = 2 / pi,
 #   dR/dt = eta a phi(Q, R),    phi = (1 + Q - R^2) / ((1 + Q) S) - R / ((1 + Q) s)
 #   dQ/dt = 2 eta a psi(Q, R) + eta^2 a^2 chi(Q, R),
 #       psi = R / ((1 + Q) S) - Q / ((1 + Q) s),
@@ -244,7 +246,7 @@ def test_escape_rate_is_the_growth_of_a_symmetry_breaking_perturbation(two_units
 def test_command_writes_json_with_nulls(tmp_path, capsys):
     path = tmp_path / "linear.toml"
     path.write_text('[student]\nhidden = 1\nactivation = "linear"\n[teacher]\nhidden = 1\nactivation = "linear"\n')
-    assert cli.main(["fixed-points", str(path), "--out", str(tmp_path / "out")]) == 0
+    assert main(["fixed-points", str(path), "--out", str(tmp_path / "out")]) == 0
     written = list((tmp_path / "out").glob("fixed_points_*.json"))
     assert len(written) == 1
     text = written[0].read_text()
@@ -258,7 +260,7 @@ def test_command_writes_json_with_nulls(tmp_path, capsys):
 def test_command_refuses_latent_data_in_one_line_and_writes_nothing(tmp_path, capsys):
     path = tmp_path / "latent.toml"
     path.write_text('[data]\nkind = "latent"\n')
-    assert cli.main(["fixed-points", str(path), "--out", str(tmp_path / "out")]) == 2
+    assert main(["fixed-points", str(path), "--out", str(tmp_path / "out")]) == 2
     error = capsys.readouterr().err
     assert error.count("\n") == 1 and "data.kind" in error
     assert not (tmp_path / "out").exists()

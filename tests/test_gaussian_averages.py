@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from harness.errors import InputError
-from harness.gaussian_averages import (
+from harness.core.errors import InputError
+from harness.equations.gaussian_averages import (
     Averages,
     gaussian_averages,
     generalisation_error,
@@ -169,7 +169,7 @@ def test_quadrature_reproduces_the_erf_closed_forms_at_singular_covariances():
 
 
 def test_linear_averages_are_covariances_on_both_routes():
-    # g(x) = x, g' = 1: I2 = C12, I3 = C23, I4 = C34, J0 = 1 (notes, section 2).
+    # g(x) = x, g' = 1: I2 = C12, I3 = C23, I4 = C34, J0 = 1 (docs/equations.md, section 2).
     cov = jnp.asarray(random_covariance(np.random.default_rng(3), 5, 1.7))
     K, P = 2, 5
     for method in ("auto", "quadrature"):
@@ -260,10 +260,11 @@ def test_relu_pair_and_noise_averages_match_the_arc_cosine_kernels():
         t = np.arccos(cos_t)
         relu_kernel = np.outer(sd, sd) / (2.0 * math.pi) * (np.sin(t) + (math.pi - t) * cos_t)
         step_kernel = (math.pi - t) / (2.0 * math.pi)
-        avg = gaussian_averages(jnp.asarray(cov), 2, "relu", "relu")
-        np.testing.assert_allclose(np.asarray(avg.I2), relu_kernel, atol=1e-7)
-        if np.all(sd[:2] > 0):  # the step of an identically zero variable is a convention
-            np.testing.assert_allclose(np.asarray(avg.J0), step_kernel[:2, :2], atol=1e-6)
+        for method in ("auto", "quadrature"):  # closed forms (harness/equations/relu_averages.py) and quadrature
+            avg = gaussian_averages(jnp.asarray(cov), 2, "relu", "relu", method=method)
+            np.testing.assert_allclose(np.asarray(avg.I2), relu_kernel, atol=1e-7)
+            if np.all(sd[:2] > 0):  # the step of an identically zero variable is a convention
+                np.testing.assert_allclose(np.asarray(avg.J0), step_kernel[:2, :2], atol=1e-6)
 
 
 @pytest.mark.parametrize("student, teacher", [("tanh", "tanh"), ("relu", "relu")])
@@ -271,14 +272,15 @@ def test_quadrature_converges_to_itself(student, teacher):
     # Default points against 40 per dimension at unit diagonal, K = 2, M = 1 (averages of
     # up to three dimensions): the accuracy the module docstring states.
     cov = jnp.asarray(random_covariance(np.random.default_rng(7), 3, 1.0))
-    default = gaussian_averages(cov, 2, student, teacher)
-    fine = gaussian_averages(cov, 2, student, teacher, points=40)
+    default = gaussian_averages(cov, 2, student, teacher, method="quadrature")
+    fine = gaussian_averages(cov, 2, student, teacher, points=40, method="quadrature")
     assert max_abs_difference(default, fine) < 3e-7
 
 
 def test_no_nan_at_singular_covariances_on_any_route():
     for cov in singular_covariances(np.random.default_rng(8)):
-        for student, teacher in [("erf", "erf"), ("linear", "linear"), ("erf", "tanh"), ("relu", "sigmoid")]:
+        for student, teacher in [("erf", "erf"), ("linear", "linear"), ("erf", "tanh"), ("relu", "sigmoid"),
+                                 ("relu", "relu"), ("tanh", "tanh"), ("sigmoid", "sigmoid")]:
             avg = gaussian_averages(jnp.asarray(cov), 2, student, teacher)
             assert all(bool(jnp.all(jnp.isfinite(x))) for x in avg), (student, teacher)
 
@@ -305,6 +307,7 @@ def test_jit_and_vmap_over_a_batch_of_covariances():
         ({"K": 5}, "K must be"),
         ({"method": "magic"}, "method 'magic'"),
         ({"student": "tanh", "method": "closed_form"}, "closed_form"),
+        ({"student": "relu", "method": "erf_sum"}, "erf_sum"),
         ({"points": 1}, "points must be"),
     ],
 )

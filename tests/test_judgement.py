@@ -16,9 +16,9 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from harness import comparison, judgement
-from harness.judgement import Margin
-from harness.trajectories import Trajectories
+from harness.core.trajectories import Trajectories
+from harness.results import comparison, judgement
+from harness.results.judgement import Margin
 
 # Three seeds, two times, one observable: d = theory - sim by hand.
 SIM = np.array([[[1.0], [0.50]], [[1.0], [0.40]], [[1.0], [0.60]]])  # [S=3, E=2, O=1]

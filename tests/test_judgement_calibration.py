@@ -12,7 +12,7 @@ replicate ensembles of S seeds, each judged as a run would be, against
 * the built-in theory shifted by 0.9 margins (inside the margin: "disagree" is an error) and
   by 1.1 margins (outside it: "agree" is an error) on the error curves.
 
-The verdict's promise (harness.judgement, docs/judgement.md): each error at most at the
+The verdict's promise (harness.results.judgement, docs/judgement.md): each error at most at the
 nominal rate alpha = 0.05 (two one-sided tests, Schuirmann 1987; simultaneous bands by the
 bootstrap max-|t|, Westfall & Young 1993, or Sidak 1967 with few seeds). Each rate is shown
 with its exact binomial (Clopper-Pearson 1934) interval; a test fails when the interval lies
@@ -24,7 +24,7 @@ from __future__ import annotations
 import pytest
 
 from benchmarks import calibration
-from harness.judgement import Margin
+from harness.results.judgement import Margin
 
 ALPHA = Margin().alpha
 REPLICATES = 200

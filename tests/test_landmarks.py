@@ -7,8 +7,8 @@ import math
 import numpy as np
 import pytest
 
-from harness import landmarks as lm
-from harness.trajectories import observable_names, stack_observables
+from harness.core.trajectories import observable_names, stack_observables
+from harness.results import landmarks as lm
 
 H = lm.LandmarkSettings().slope_window
 

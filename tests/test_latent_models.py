@@ -10,12 +10,15 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import comparison, experiment, feature_covariance, latent_models, pipeline
-from harness import scenario as scenario_lib
-from harness.cli import print_run_summary
-from harness.data_models import build_data_model
-from harness.judgement import Margin
-from harness.scenario import ScenarioError
+from harness.cli.run import print_run_summary
+from harness.core import scenario as scenario_lib
+from harness.core.scenario import ScenarioError
+from harness.data import feature_covariance
+from harness.data import latent as latent_models
+from harness.data.model import build_data_model
+from harness.results import comparison
+from harness.results.judgement import Margin
+from harness.runner import experiment, pipeline
 
 
 def _scenario(data: dict, **sections) -> dict:
@@ -96,7 +99,7 @@ def test_deep_latent_model_reports_its_monte_carlo_error():
 @pytest.mark.parametrize("feature_map", ["sign", "tanh"])
 def test_simulation_and_paired_latent_theory_agree(feature_map):
     # Issue 3: latent sign and tanh models at N ~ 300, D = N / 2, simulation and the exact
-    # finite-N projected equations (notes, section 4) agree, |z| <= 4 for test_error.
+    # finite-N projected equations (docs/equations.md, section 5) agree, |z| <= 4 for test_error.
     scenario = _scenario(
         {"input_dim": 300, "feature_map": feature_map},
         sgd={"time": 8.0}, run={"seeds": 16, "evaluations": 8, "test_samples": 4000},
@@ -197,7 +200,7 @@ def test_trained_latent_model_uses_the_stored_generator(tmp_path, monkeypatch):
     # trained_latent: inputs are the stored decoder's images, centred and scaled so that
     # tr(Omega) / N = 1, the latent code c feeds the teacher; Omega and Phi by Monte Carlo
     # (one estimate for every seed), their standard errors reported.
-    from harness import trained_generator
+    from harness.data import trained_generator
 
     monkeypatch.setenv("HARNESS_GENERATORS", str(tmp_path))
     scenario = _scenario({"kind": "trained_latent", "input_dim": 64, "generator": "small", "moment_samples": 20_000},

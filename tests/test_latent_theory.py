@@ -9,11 +9,14 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from harness import iid_theory, latent_theory, simulation
-from harness import scenario as scenario_lib
-from harness.errors import InputError
-from harness.paired_theory import initial_state
-from harness.scenario import ScenarioError
+from harness.core import scenario as scenario_lib
+from harness.core import times as time_grid
+from harness.core.errors import InputError
+from harness.core.scenario import ScenarioError
+from harness.equations import iid as iid_theory
+from harness.equations import latent as latent_theory
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 
 def _random_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:
@@ -27,7 +30,7 @@ def _random_orthogonal(rng: np.random.Generator, n: int) -> np.ndarray:
     [("erf", "erf", 0.0, False, 3, 2), ("erf", "erf", 0.3, True, 3, 2), ("tanh", "tanh", 0.2, True, 2, 1)],
 )
 def test_identity_covariances_reproduce_iid_equations(student, teacher, noise_std, train_second_layer, K, M):
-    # Required by theory notes, section 4: with Omega = Phi = I (D = N), summing the
+    # Required by docs/equations.md, section 5: with Omega = Phi = I (D = N), summing the
     # projected equations over tau gives back the section-3 equations exactly. Any
     # orthonormal basis diagonalises Omega = I, so a random one is used, and the
     # per-tau overlaps are the products of projections of random weights.
@@ -107,7 +110,7 @@ def test_marchenko_pastur_bins_have_the_law_s_moments(gamma):
 
 def test_feature_map_coefficients_match_closed_forms():
     # sign: kappa1 = sqrt(2/pi), E f^2 = 1; erf(z/sqrt2): kappa1 = 1/sqrt(pi), E f^2 = (2/pi) arcsin(1/2) = 1/3
-    # (Stein's lemma and the arcsine kernel, notes section 2).
+    # (Stein's lemma and the arcsine kernel, docs/equations.md, section 2).
     k1, ks = latent_theory.feature_map_coefficients("sign")
     assert k1 == pytest.approx(math.sqrt(2 / math.pi), rel=1e-12) and ks == pytest.approx(1 - 2 / math.pi, rel=1e-12)
     k1, ks = latent_theory.feature_map_coefficients("erf")
@@ -148,7 +151,7 @@ def test_thermodynamic_limit_agrees_with_the_finite_solve_at_large_N():
         "run": {"seeds": 1, "evaluations": 12, "spacing": "linear"},
     })
     start = initial_state(simulation.make_simulator(scenario), np.arange(1))
-    times = simulation.evaluation_steps(scenario) / 2000
+    times = time_grid.evaluation_steps(scenario) / 2000
     finite = latent_theory.builtin_latent(scenario, start, times).values[..., 0]
     infinite_scenario = scenario_lib.with_overrides(scenario, {"theory.limit": "infinite"})
     infinite = latent_theory.builtin_latent(infinite_scenario, start, times).values[..., 0]

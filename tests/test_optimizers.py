@@ -5,9 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness import experiment, paired_theory
-from harness import scenario as sc
-from harness.optimizers import make_optimizer
+from harness.core import scenario as sc
+from harness.equations import sources as paired_theory
+from harness.runner import experiment
+from harness.sim.optimizers import make_optimizer
 
 N = 64
 
@@ -96,7 +97,7 @@ def test_learning_rates_are_state_not_constants_and_the_simulation_is_unchanged(
     import jax.numpy as jnp
     import optax
 
-    from harness import simulation
+    from harness.sim import simulation
 
     extra = {"sgd.momentum": 0.6} if kind == "momentum" else {}
     s = scenario(**{"sgd.optimizer": kind, **extra})
@@ -138,7 +139,7 @@ def test_builtin_theory_warns_when_the_simulation_is_not_plain_sgd(monkeypatch):
     called = []
     monkeypatch.setitem(paired_theory.BUILTIN_THEORIES, "gaussian", lambda *args: called.append(1))
     s = scenario(**{"sgd.optimizer": "momentum"})
-    with pytest.warns(UserWarning, match="describes plain SGD without weight decay, but the simulation uses "
+    with pytest.warns(UserWarning, match="describes plain SGD .*, but the simulation uses "
                                          "sgd.optimizer = 'momentum'; expect them to disagree"):
         paired_theory.predict(s, None, np.zeros(2))
     assert called

@@ -16,8 +16,8 @@ import pandas as pd
 import pytest
 from conftest_figures import write_run_folder, write_scaling_folder, write_sweep_folder
 
-from harness import report
-from harness.figures_cli import add_figure_commands
+from harness.cli.figure import add_figure_commands
+from harness.plot import report
 
 VOID_ELEMENTS = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
 

@@ -9,14 +9,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import scaling
-from harness.cli import main
-from harness.scenario import load
+from harness.cli.main import main
+from harness.core.scenario import load
+from harness.studies import scaling
 
 REPO = Path(__file__).resolve().parents[1]
 
 # K = M = 1 (no plateau, see the scaling module docstring), eta = 1.5 where the eta^2 term
-# of the notes' section 3 matters, short time, small sizes: a few seconds per size.
+# of docs/equations.md, section 4 matters, short time, small sizes: a few seconds per size.
 SCENARIO = """
 [teacher]
 hidden = 1

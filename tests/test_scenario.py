@@ -11,15 +11,15 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harness import scenario as sc
-from harness.cli import main
+from harness.cli.main import main
+from harness.core import scenario as sc
 
 
 def test_defaults_are_the_documented_ones():
     s = sc.default_scenario()
     assert s["data"]["kind"] == "gaussian" and s["data"]["input_dim"] == 500
     assert s["teacher"]["hidden"] == 2 and s["teacher"]["activation"] == "erf"
-    assert s["teacher"]["second_layer"] == [1.0, 1.0] and s["teacher"]["noise_std"] == 0.0
+    assert s["teacher"]["second_layer"] == (1.0, 1.0) and s["teacher"]["noise_std"] == 0.0
     assert s["student"]["init_std"] == 0.1 and s["student"]["train_second_layer"] is False
     assert s["sgd"]["learning_rate"] == 0.5 and s["sgd"]["second_layer_learning_rate"] == 0.5
     assert s["sgd"]["time"] == 300.0
@@ -29,7 +29,7 @@ def test_defaults_are_the_documented_ones():
 
 def test_derived_defaults_follow_their_keys():
     s = sc.resolve({"student": {"hidden": 3}, "sgd": {"learning_rate": 0.2}})
-    assert s["student"]["second_layer"] == [1.0, 1.0, 1.0]
+    assert s["student"]["second_layer"] == (1.0, 1.0, 1.0)
     assert s["sgd"]["second_layer_learning_rate"] == 0.2
 
 
@@ -43,7 +43,7 @@ def test_toml_round_trip_and_run_id_stability():
 
 def test_overrides_rederive_defaults():
     s = sc.with_overrides(sc.default_scenario(), {"teacher.hidden": 3, "data.input_dim": 100})
-    assert s["teacher"]["second_layer"] == [1.0] * 3 and s["data"]["input_dim"] == 100
+    assert s["teacher"]["second_layer"] == (1.0,) * 3 and s["data"]["input_dim"] == 100
 
 
 @pytest.mark.parametrize(
@@ -121,9 +121,9 @@ scalars = st.one_of(
     st.integers(-10**6, 10**6), st.floats(allow_nan=True, allow_infinity=True), st.booleans(),
     st.text(max_size=8), st.lists(st.floats(allow_nan=False, allow_infinity=False, width=32), max_size=4),
 )
-sections = st.sampled_from(list(sc.SCHEMA) + ["sweep", "extra"])
+sections = st.sampled_from(list(sc.builtin_schema()) + ["sweep", "extra"])
 key_names = st.one_of(
-    st.sampled_from(sorted({k for keys in sc.SCHEMA.values() for k in keys})), st.text(min_size=1, max_size=6)
+    st.sampled_from(sorted({k for keys in sc.builtin_schema().values() for k in keys})), st.text(min_size=1, max_size=6)
 )
 tables = st.dictionaries(sections, st.one_of(st.dictionaries(key_names, scalars, max_size=5), scalars), max_size=4)
 

@@ -1,6 +1,6 @@
 """The JAX simulator against a plain NumPy per-sample loop, and the invariances of its stream.
 
-The NumPy loop below is written from the update rule of the theory notes, section 1:
+The NumPy loop below is written from the update rule of docs/equations.md, section 1:
   w_k <- w_k - (eta / sqrt(N)) v_k g'(lambda_k) Delta x,   v_k <- v_k - (eta_v / N) g(lambda_k) Delta,
 with g(x) = erf(x / sqrt(2)) and g'(x) = sqrt(2 / pi) exp(-x^2 / 2). It is fed the very samples
 the simulator draws (simulation.draw_steps) and must reproduce its weights to float64 rounding.
@@ -15,8 +15,8 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.special import erf
 
-from harness import scenario as sc
-from harness import simulation
+from harness.core import scenario as sc
+from harness.sim import simulation
 
 
 def _scenario(**overrides: object) -> dict:
@@ -37,7 +37,7 @@ def _scenario(**overrides: object) -> dict:
 
 
 def _numpy_loop(w: np.ndarray, v: np.ndarray, x: np.ndarray, y: np.ndarray, eta: float, eta_v: float) -> tuple:
-    """Plain per-sample online SGD (notes, section 1), one sample at a time."""
+    """Plain per-sample online SGD (docs/equations.md, section 1), one sample at a time."""
     w, v = w.copy(), v.copy()
     n = w.shape[1]
     for x_i, y_i in zip(x, y, strict=True):

@@ -5,11 +5,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from harness import comparison, simulation
-from harness import scenario as sc
-from harness.experiment import run_experiment, simulate
-from harness.judgement import Margin
-from harness.paired_theory import builtin_iid, initial_state
+from harness.core import scenario as sc
+from harness.core import times as time_grid
+from harness.equations.sources import builtin_iid
+from harness.results import comparison
+from harness.results.judgement import Margin
+from harness.runner.experiment import run_experiment, simulate
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 INNER = 13.78  # measured when written: the band lies 13.8 margins out where it lies furthest
 
@@ -123,7 +126,7 @@ def test_runs_are_bit_identical_and_seeds_differ():
 
 def test_evaluation_times_include_zero_and_the_end():
     s = sc.resolve({"data": {"input_dim": 100}, "sgd": {"time": 50.0}, "run": {"evaluations": 30}})
-    steps = simulation.evaluation_steps(s)
+    steps = time_grid.evaluation_steps(s)
     assert steps[0] == 0 and steps[-1] == 5000 and np.all(np.diff(steps) > 0) and len(steps) == 30
-    lin = simulation.evaluation_steps(sc.with_overrides(s, {"run.spacing": "linear"}))
+    lin = time_grid.evaluation_steps(sc.with_overrides(s, {"run.spacing": "linear"}))
     assert np.allclose(np.diff(lin), 5000 / 29, atol=1)

@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from scipy.integrate import solve_ivp
 
-from harness import iid_theory
-from harness import scenario as sc
+from harness.core import scenario as sc
+from harness.equations import iid as iid_theory
 
 
 def _initial(K: int, M: int, rng: np.random.Generator, scale: float = 0.3):

@@ -18,19 +18,14 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import scenario as scenario_lib
-from harness import simulation, sweep
-from harness.checkpoint import FILE_NAME
-from harness.cli import main
-from harness.experiment import simulate
-from harness.results_store import (
-    append_index_row,
-    is_abandoned,
-    is_complete_run,
-    read_index,
-    remove_index_leftovers,
-    staging_folder,
-)
+from harness.cli.main import main
+from harness.core import scenario as scenario_lib
+from harness.core.files import is_abandoned, staging_folder
+from harness.results.store import append_index_row, is_complete_run, read_index, remove_index_leftovers
+from harness.runner.checkpoint import FILE_NAME
+from harness.runner.experiment import simulate
+from harness.sim import simulation
+from harness.studies import sweep
 
 # Tiny points: N = 50, 2 seeds, t = 12, a checkpoint after every evaluation.
 TINY = """
@@ -72,7 +67,7 @@ student.hidden = [1, 2]
     assert grid.points == [{"sgd.learning_rate": lr, "student.hidden": k} for lr in (0.1, 0.2, 0.3) for k in (1, 2)]
     assert [s["student"]["hidden"] for s in grid.scenarios] == [1, 2] * 3
     # The derived default second layer follows the swept hidden size.
-    assert grid.scenarios[1]["student"]["second_layer"] == [1.0, 1.0]
+    assert grid.scenarios[1]["student"]["second_layer"] == (1.0, 1.0)
     assert len(set(grid.run_ids)) == 6
 
     paired = sweep.load_sweep(_write(tmp_path / "z.toml", TINY + """
@@ -318,7 +313,7 @@ def test_temporary_names_tell_a_dead_writers_leftovers_from_live_work(tmp_path):
     # A process that creates a temporary file the way the store does and dies without
     # cleaning up: its leftover is abandoned. Our own, another host's, or an unknown name: not.
     code = (
-        "import sys, tempfile; from harness.results_store import _temporary_prefix; "
+        "import sys, tempfile; from harness.core.files import _temporary_prefix; "
         "print(tempfile.mkstemp(prefix=_temporary_prefix('runs.parquet'), suffix='.partial', dir=sys.argv[1])[1])"
     )
     dead = subprocess.run([sys.executable, "-c", code, str(tmp_path)], capture_output=True, text=True, check=True)

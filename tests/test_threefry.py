@@ -1,4 +1,4 @@
-"""harness.threefry draws the very bits of jax.random (threefry2x32, partitionable mode).
+"""harness.core.threefry draws the very bits of jax.random (threefry2x32, partitionable mode).
 
 The reference is JAX itself (jax.random.normal / uniform / fold_in / split): if a JAX upgrade
 changes its stream, these tests fail instead of the harness's results changing silently.
@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 import harness  # noqa: F401  (enables float64 as the package does)
-from harness import threefry
+from harness.core import threefry
 
 
 def _same_bits(a, b) -> None:

@@ -10,9 +10,9 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from harness.cli import main
-from harness.errors import InputError
-from harness.trained_generator import (
+from harness.cli.main import main
+from harness.core.errors import InputError
+from harness.data.trained_generator import (
     CHECKSUM_FILE,
     PARAMS_FILE,
     SETTINGS_FILE,

@@ -12,13 +12,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import experiment
-from harness import scenario as sc
-from harness.data_models import build_data_model
-from harness.errors import InputError
-from harness.pipeline import run_and_store
-from harness.trajectories import observable_names
-from harness.user_data import MOMENT_SAMPLES
+from harness.core import scenario as sc
+from harness.core.errors import InputError
+from harness.core.trajectories import observable_names
+from harness.data.model import build_data_model
+from harness.data.user import MOMENT_SAMPLES
+from harness.runner import experiment
+from harness.runner.pipeline import run_and_store
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -27,7 +27,7 @@ DATA_SOURCE = '''
 import jax
 import jax.numpy as jnp
 import numpy as np
-from harness.user_data import UserData
+from harness.data.user import UserData
 
 def gaussian_sampler(scenario, dtype):
     n = scenario["data"]["input_dim"]
@@ -105,7 +105,7 @@ def test_two_cluster_inputs_run_end_to_end(factories, tmp_path):
 
 
 def test_given_moments_are_the_covariance_of_the_local_fields(factories):
-    # The order parameters are defined as Cov(lambda, nu) (notes, section 2); with the
+    # The order parameters are defined as Cov(lambda, nu) (docs/equations.md, section 2); with the
     # example's exact Omega = Phi = C = I + mu mu^T they must match the empirical
     # covariance of the local fields over many fresh samples.
     s = user_scenario("python:examples.two_clusters:inputs", **{"data.input_dim": 50})
@@ -157,7 +157,7 @@ def test_labels_given_directly_report_nan_overlaps_without_crashing(factories):
     ("factory", "expected"),
     [
         ("raises", "raised RuntimeError: cannot build the clusters"),
-        ("returns_number", "returned a int, expected harness.user_data.UserData or a sampler"),
+        ("returns_number", "returned a int, expected harness.data.user.UserData or a sampler"),
         ("wrong_x", "its sampler returned x of shape (3, 7) for n = 3, expected a pair (x [n, 64], c [n, D])"),
         ("single_array", "its sampler returned ShapeDtypeStruct, expected a pair"),
         ("labels_with_wrong_shape", "its sampler returned labels of shape (3, 2) for n = 3"),

@@ -9,14 +9,18 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from harness import comparison, experiment, iid_theory, judgement, simulation
-from harness import scenario as sc
-from harness.cli import main
-from harness.errors import InputError
-from harness.judgement import Margin
-from harness.paired_theory import InitialState, initial_state, predict
-from harness.trajectories import Trajectories, observable_names
-from harness.user_theory import interpolate_log_time, python_theory, read_theory_file
+from harness.cli.main import main
+from harness.core import scenario as sc
+from harness.core.errors import InputError
+from harness.core.trajectories import Trajectories, observable_names
+from harness.equations import iid as iid_theory
+from harness.equations.sources import InitialState, predict
+from harness.equations.user import interpolate_log_time, python_theory, read_theory_file
+from harness.results import comparison, judgement
+from harness.results.judgement import Margin
+from harness.runner import experiment
+from harness.sim import simulation
+from harness.sim.initial import initial_state
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -104,9 +108,11 @@ def test_per_seed_curves_are_paired_and_keep_each_seed(theories):
     np.testing.assert_array_equal(q[:, -1], [1.0, 2.0, 3.0])
 
 
-def test_the_function_gets_a_copy_of_the_scenario(theories):
+def test_the_function_cannot_change_the_scenario(theories):
+    # A resolved scenario is immutable: a theory that tries to write into it is told so in one line.
     s = user_scenario(f"python:{THEORY_MODULE}:mutates")
-    python_theory(s, fake_start(), TIMES)
+    with pytest.raises(InputError, match="raised TypeError"):
+        python_theory(s, fake_start(), TIMES)
     assert s["sgd"]["learning_rate"] == 0.5
 
 
@@ -285,7 +291,7 @@ def test_weight_decay_example_agrees_with_its_theory_and_not_with_the_builtin(tm
         assert test.verdict != "agree" and math.isfinite(test.detected_t), (kappa, off.groups)
 
     builtin = sc.with_overrides(s, {"theory.source": "builtin"})
-    with pytest.warns(UserWarning, match="describes plain SGD without weight decay"):
+    with pytest.warns(UserWarning, match="describes plain SGD"):
         plain = predict(builtin, start, simulated.t)
     verdict = compare(simulated, plain)
     for group in ("test_error", "Q", "R"):

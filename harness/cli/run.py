@@ -1,0 +1,148 @@
+"""``harness run`` and ``harness theory``: one scenario simulated (or its theory solved), judged and stored."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+DEFAULT_OUT = Path("results")
+
+
+def _load_scenario(path: str | None):
+    from harness.core import scenario as scenario_lib
+
+    return scenario_lib.load(path)
+
+
+def _number(value, digits: int = 3) -> str:
+    return "-" if value is None or value != value else f"{value:.{digits}g}"
+
+
+def _seeds(value, verdict: str) -> str:
+    """Seeds that would settle an inconclusive verdict (None in judgement.json: none would)."""
+    if verdict != "inconclusive":
+        return "-"
+    return "none would" if value is None or value != value or value == float("inf") else f"about {int(value)}"
+
+
+def format_judgement(record: dict) -> list[str]:
+    """The verdict table of a run (judgement.json, harness.results.judgement), as terminal lines."""
+    lines = [
+        f"  {'group':<15}{'verdict':<14}{'|diff|/margin':>14}{'band/margin':>13}{'detectable':>12}"
+        f"{'departs':>10}  seeds to settle",
+        f"  {'':<15}{'':<14}{'(largest)':>14}{'(reach)':>13}{'from t':>12}{'from t':>10}",
+    ]
+    for g in record["groups"]:
+        verdict = g["verdict"].upper() if g["verdict"] == "disagree" else g["verdict"]
+        lines.append(
+            f"  {g['group']:<15}{verdict:<14}{_number(g['worst_ratio']):>14}{_number(g['reach']):>13}"
+            f"{_number(g['detected_t']):>12}{_number(g['departs_t']):>10}  {_seeds(g['seeds_needed'], g['verdict'])}"
+        )
+    verdict = record["verdict"]
+    text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
+    if verdict == "inconclusive":
+        needed = record.get("seeds_needed")
+        text += (": no number of seeds would settle it at this margin" if needed is None or needed == float("inf")
+                 else f": about {int(needed)} seeds would settle it (an estimate from the measured spread)")
+    lines.append(text)
+    band = f"c = {_number(record['band_factor'])}, {record['band_method']}"
+    if record.get("band_cells"):
+        band += f" over {record['band_cells']} cells with {record['band_seeds']} seeds"
+    lines.append(
+        f"  (agree: the {100 * (1 - record['alpha']):.3g} % simultaneous band of theory - simulation lies within "
+        f"+-margin at every time; disagree: wholly outside it at some time;\n"
+        f"   margin = {record['margin']:g} x an error's value at each time (at least {record['floor']:g} x its "
+        f"largest), {record['margin']:g} x an order-parameter group's largest size; band = mean +- {band})"
+    )
+    return lines
+
+
+def print_run_summary(stored, scenario, *, stream=None) -> None:
+    """The closing lines of a run: where it is, its cost, its verdict table and its gaps."""
+    from harness.results.comparison import describe_gaps
+
+    stream = stream or sys.stdout
+    timings = stored.manifest["timings"]
+    s = scenario
+    if stored.skipped:
+        stream.write(f"run {stored.run_id} already complete in {stored.folder} (use --force to redo); stored:\n")
+    else:
+        stream.write(f"run {stored.run_id} -> {stored.folder}\n")
+    costs = f"theory {timings['theory_s']:.2f} s"
+    if stored.manifest.get("kind") != "theory":
+        costs = f"simulation {timings['simulation_s']:.1f} s, " + costs
+    stream.write(
+        f"  {s['run']['seeds']} seeds, N = {s['data']['input_dim']}, K = {s['student']['hidden']}, "
+        f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}; {costs}; compiling: simulation "
+        f"{timings['compile_s']:.1f} s, theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
+    )
+    if stored.manifest.get("diverged_count"):
+        stream.write(f"  {stored.manifest['diverged_count']} seed(s) diverged and left the averages\n")
+    if stored.manifest.get("kind") == "theory" or stored.judgement is None:
+        return
+    for line in format_judgement(stored.judgement):
+        stream.write(line + "\n")
+    for line in describe_gaps(stored.judgement.get("gaps", {})):
+        stream.write(f"  {line}\n")
+
+
+def verdict_status(stored) -> int:
+    """Exit status of a command that judged a run: 0 agree, 1 disagree, 3 inconclusive (harness.results.judgement)."""
+    from harness.results.judgement import EXIT_STATUS, NOT_JUDGED
+
+    verdict = stored.judgement["verdict"] if stored.judgement else NOT_JUDGED
+    return EXIT_STATUS[verdict]
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
+    from harness.runner.pipeline import run_and_store
+    from harness.runner.progress import Progress
+
+    with Progress("simulating", 1, enabled=not args.quiet) as bar:
+
+        def report(done: int, total: int) -> None:
+            bar.total = total
+            bar.update(done, f"step {done}/{total}")
+
+        stored = run_and_store(scenario, args.out, force=args.force, progress=report)
+    print_run_summary(stored, scenario)
+    return verdict_status(stored)
+
+
+def _cmd_theory(args: argparse.Namespace) -> int:
+    scenario = _load_scenario(args.scenario)
+    from harness.runner.pipeline import theory_and_store
+
+    stored = theory_and_store(scenario, args.out, force=args.force)
+    print_run_summary(stored, scenario)
+    return verdict_status(stored)
+
+
+def add_run_commands(subparsers) -> None:
+    """Register ``harness run`` and ``harness theory``."""
+    run = subparsers.add_parser(
+        "run", help="simulate a scenario and pair it with its theory, seed by seed",
+        description="Simulate a scenario, pair it with its theory seed by seed, judge and store it. Exit status: "
+        "0 agree, 1 disagree, 3 inconclusive (agreement within the scenario's [agreement] margin is shown, "
+        "disagreement is shown, or neither), 2 bad input.",
+    )
+    run.add_argument("scenario", nargs="?", help="scenario TOML file (default: the embedded default scenario)")
+    run.add_argument("--out", type=Path, default=DEFAULT_OUT, help="results folder (default: results/)")
+    run.add_argument("--force", action="store_true", help="redo a run whose identical scenario is already stored")
+    run.add_argument("--quiet", action="store_true", help="no progress line")
+    run.set_defaults(handler=_cmd_run)
+
+    theory = subparsers.add_parser(
+        "theory", help="solve the theory alone from the initial conditions a run would draw",
+        description="Solve the scenario's theory alone, from the initial conditions a run would draw, and store it. "
+        "Exit status: 0 (or, when judged against a stored simulation, 0 agree, 1 disagree, 3 inconclusive), "
+        "2 bad input.",
+    )
+    theory.add_argument("scenario", nargs="?", help="scenario TOML file (default: the embedded default scenario)")
+    theory.add_argument("--out", type=Path, default=DEFAULT_OUT, help="results folder (default: results/)")
+    theory.add_argument("--force", action="store_true", help="redo an identical stored theory run")
+    theory.set_defaults(handler=_cmd_theory)
+
+

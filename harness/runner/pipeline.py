@@ -1,0 +1,247 @@
+"""From a resolved scenario to a stored run: experiment, comparison, results store.
+
+:func:`run_and_store` is what ``harness run`` (and every sweep point) does;
+:func:`theory_and_store` is ``harness theory``. Both return a :class:`StoredRun`.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import json
+import platform
+import sys
+from importlib import metadata
+from pathlib import Path
+from typing import Any, NamedTuple
+
+import jax
+import numpy as np
+import pandas as pd
+
+from harness.core import scenario as scenario_lib
+from harness.core.files import atomic_write_json, atomic_write_parquet, atomic_write_text
+from harness.core.trajectories import Trajectories, from_frame, observable_names
+from harness.results import comparison
+from harness.results.judgement import Margin
+from harness.results.store import append_index_row, is_complete_run, write_run_folder
+from harness.results.stored import divergence_times, judgement_record
+from harness.runner.checkpoint import checkpoint_folder, discard_checkpoint
+from harness.runner.experiment import ProgressFn, run_experiment, theory_only, theory_timings
+
+PACKAGES = ("harness", "numpy", "jax", "jaxlib", "optax", "diffrax", "equinox", "pandas", "pyarrow", "scipy")
+
+
+class StoredRun(NamedTuple):
+    run_id: str
+    folder: Path
+    skipped: bool  # True: an identical complete run already existed (re-judged if the margin changed)
+    metrics: pd.DataFrame | None
+    manifest: dict[str, Any] | None
+    judgement: dict[str, Any] | None = None  # judgement.json
+
+
+def package_versions() -> dict[str, str]:
+    versions = {}
+    for name in PACKAGES:
+        try:
+            versions[name] = metadata.version(name)
+        except metadata.PackageNotFoundError:
+            versions[name] = "not installed"
+    return versions
+
+
+def base_manifest(scenario: scenario_lib.Scenario, run_id: str, started: _dt.datetime) -> dict[str, Any]:
+    device = jax.devices()[0]
+    return {
+        "run_id": run_id,
+        "started": started.isoformat(timespec="seconds"),
+        "command": sys.argv,
+        "packages": package_versions(),
+        "python": platform.python_version(),
+        "machine": {"platform": platform.platform(), "processor": platform.machine()},
+        "jax_backend": jax.default_backend(),
+        "jax_device": f"{device.platform}:{device.device_kind}",
+        "dtype": scenario.run.dtype,
+        "seeds": scenario.run.seeds,
+    }
+
+
+def index_row(
+    run_id: str, scenario: scenario_lib.Scenario, comp: comparison.Comparison, kind: str = "run"
+) -> dict[str, Any]:
+    """The run's row in ``runs.parquet``: id, flattened scenario, verdicts, test_error metrics, gaps."""
+    row: dict[str, Any] = {"run_id": run_id, "kind": kind}
+    row.update(scenario_lib.flatten(scenario))
+    judgement = comp.judgement
+    row["verdict"] = judgement.verdict
+    # NaN also where no number of seeds would settle it (with verdict "inconclusive"), as in
+    # judgement.json: the row must read back the same through strict JSON (a sweep's set-aside row)
+    needed = float(judgement.seeds_needed)
+    row["verdict.seeds_needed"] = needed if np.isfinite(needed) else float("nan")
+    for group in judgement.groups:
+        row[f"verdict.{group.group}"] = group.verdict
+    test = comp.metrics[comp.metrics["observable"] == "test_error"]
+    if not test.empty:
+        for column in comparison.METRIC_COLUMNS[1:] + ["band_reach", "band_inner", "detected_t"]:
+            row[f"test_error.{column}"] = float(test.iloc[0][column])
+    final = comp.summary[comp.summary["observable"] == "test_error"].sort_values("t").iloc[-1]
+    row["final_test_error"] = float(final["sim_mean"])
+    row["final_test_error_sem"] = float(final["sim_sem"])
+    row["final_theory_error"] = float(final["theory_mean"])
+    for name in ("gaussian_equivalence", "dynamics", "theory"):
+        gap = comp.gaps.get(name)
+        if gap is not None:
+            row[f"{name}.verdict"] = gap["verdict"]
+            row[f"{name}.relative"] = float(gap["relative"])
+    return row
+
+
+class ComputedRun(NamedTuple):
+    """A run computed but not yet stored: everything :func:`store_run` writes (picklable)."""
+
+    run_id: str
+    scenario_toml: str
+    manifest: dict[str, Any]
+    trajectories: pd.DataFrame
+    summary: pd.DataFrame
+    metrics: pd.DataFrame
+    judgement: dict[str, Any]
+    index_row: dict[str, Any]
+
+
+def compute_run(
+    scenario: scenario_lib.Scenario,
+    *,
+    progress: ProgressFn | None = None,
+    extra_manifest: dict[str, Any] | None = None,
+    checkpoint_dir: str | Path | None = None,
+) -> ComputedRun:
+    """Simulate, pair with theory and compare, writing nothing but optional checkpoints.
+
+    This is the half of :func:`run_and_store` that a sweep runs on a worker; the client
+    then calls :func:`store_run`. With ``checkpoint_dir`` the simulation saves its state
+    there every ``run.checkpoint_minutes`` and resumes from a checkpoint it finds.
+    """
+    started = _dt.datetime.now(_dt.UTC)
+    result = run_experiment(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
+    extra: dict[str, Any] = {}
+    if result.resumed_from_step:
+        extra["resumed_from_step"] = result.resumed_from_step
+    if result.data_notes:
+        extra["data_model"] = result.data_notes
+    return computed_run(
+        scenario, result.trajectories, started=started, timings=result.timings, diverged_at=result.diverged_at,
+        extra_manifest=extra | (extra_manifest or {}),
+    )
+
+
+def computed_run(
+    scenario: scenario_lib.Scenario,
+    traj: Trajectories,
+    *,
+    started: _dt.datetime,
+    timings: dict[str, float],
+    diverged_at: np.ndarray | None = None,
+    kind: str = "run",
+    extra_manifest: dict[str, Any] | None = None,
+) -> ComputedRun:
+    """Judge trajectories and assemble every file of their run (``kind`` "run" or "theory")."""
+    run_id = scenario_lib.run_id(scenario) + ("-theory" if kind == "theory" else "")
+    diverged_at = np.full(len(traj.seeds), np.nan) if diverged_at is None else np.asarray(diverged_at)
+    comp = comparison.compare(traj, Margin.from_scenario(scenario), diverged_at)
+    diverged = [
+        {"seed": int(s), "t": float(t)} for s, t in zip(traj.seeds, diverged_at, strict=True) if np.isfinite(t)
+    ]
+    manifest = base_manifest(scenario, run_id, started)
+    manifest.update(
+        {
+            "kind": kind,
+            "diverged_seeds": diverged,
+            "diverged_count": len(diverged),
+            "paired": traj.paired,
+            "evaluations": len(traj.t),
+            "timings": timings,
+        }
+    )
+    manifest.update(extra_manifest or {})
+    return ComputedRun(
+        run_id, scenario_lib.to_toml(scenario), manifest, traj.to_frame(), comp.summary, comp.metrics,
+        judgement_record(comp), index_row(run_id, scenario, comp, kind=kind),
+    )
+
+
+def store_run(computed: ComputedRun, out_dir: str | Path, *, force: bool = False) -> StoredRun:
+    """Write a computed run's folder and index row atomically, then drop its checkpoint."""
+    folder = write_run_folder(
+        out_dir, computed.run_id,
+        scenario_toml=computed.scenario_toml, manifest=computed.manifest,
+        trajectories=computed.trajectories, summary=computed.summary, metrics=computed.metrics,
+        judgement=computed.judgement, replace=force,
+    )
+    append_index_row(out_dir, computed.index_row)
+    discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
+    return StoredRun(computed.run_id, folder, False, computed.metrics, computed.manifest, computed.judgement)
+
+
+def run_and_store(
+    scenario: scenario_lib.Scenario,
+    out_dir: str | Path,
+    *,
+    force: bool = False,
+    progress: ProgressFn | None = None,
+    extra_manifest: dict[str, Any] | None = None,
+) -> StoredRun:
+    """Simulate, pair with theory, compare, and write ``out_dir/<run_id>/`` atomically."""
+    run_id = scenario_lib.run_id(scenario)
+    folder = Path(out_dir) / run_id
+    if is_complete_run(folder) and not force:
+        return judge_stored_run(folder, scenario, out_dir)
+    checkpoints = checkpoint_folder(out_dir, run_id)
+    if force:
+        discard_checkpoint(checkpoints)  # redo from the start, as asked
+    computed = compute_run(scenario, progress=progress, extra_manifest=extra_manifest, checkpoint_dir=checkpoints)
+    return store_run(computed, out_dir, force=force)
+
+
+def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, force: bool = False) -> StoredRun:
+    """Solve the theory alone and write the same tables (``sim`` columns are NaN)."""
+    folder = Path(out_dir) / (scenario_lib.run_id(scenario) + "-theory")
+    if is_complete_run(folder) and not force:
+        return judge_stored_run(folder, scenario, out_dir)
+    return store_run(compute_theory(scenario), out_dir, force=force)
+
+
+def compute_theory(scenario: scenario_lib.Scenario) -> ComputedRun:
+    """Solve the theory alone from the initial conditions a run would draw; nothing is written."""
+    started = _dt.datetime.now(_dt.UTC)
+    t, start, values, clock = theory_only(scenario)
+    names = observable_names(scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer)
+    traj = Trajectories(start.seeds, t, names, np.full_like(values, np.nan), values)
+    timings = theory_timings(clock) | {"simulation_s": 0.0, "compile_s": 0.0}
+    return computed_run(scenario, traj, started=started, timings=timings, kind="theory")
+
+
+def judge_stored_run(folder: Path, scenario: scenario_lib.Scenario, out_dir: str | Path) -> StoredRun:
+    """A complete stored run, judged with ``scenario``'s ``[agreement]`` settings.
+
+    Judging changes no computation (the settings are not part of the run_id), so a run
+    stored under other settings, or before judgement.json existed, is judged again from its
+    stored trajectories; its summary, metrics, judgement, scenario copy and index row are
+    rewritten atomically. Otherwise the stored files are read back as they are.
+    """
+    manifest = json.loads((folder / "manifest.json").read_text())
+    stored_judgement = folder / "judgement.json"
+    margin = Margin.from_scenario(scenario)
+    if stored_judgement.is_file():
+        record = json.loads(stored_judgement.read_text())
+        if Margin(record["margin"], record["floor"], record["alpha"]) == margin:
+            return StoredRun(folder.name, folder, True, pd.read_parquet(folder / "metrics.parquet"), manifest, record)
+    traj = from_frame(pd.read_parquet(folder / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
+    comp = comparison.compare(traj, margin, divergence_times(traj, manifest))
+    record = judgement_record(comp)
+    atomic_write_parquet(folder / "summary.parquet", comp.summary)
+    atomic_write_parquet(folder / "metrics.parquet", comp.metrics)
+    atomic_write_json(folder / "judgement.json", record)
+    atomic_write_text(folder / "scenario.toml", scenario_lib.to_toml(scenario))
+    append_index_row(out_dir, index_row(folder.name, scenario, comp, kind=manifest.get("kind", "run")))
+    return StoredRun(folder.name, folder, True, comp.metrics, manifest, record)
