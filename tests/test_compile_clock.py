@@ -56,10 +56,10 @@ def test_the_solver_program_has_no_host_callback_so_the_persistent_cache_keeps_i
     # EQX_ON_ERROR=nan so that they are not). A callback shows up as a custom call.
     dyn, start = _dyn_and_start()
     static, rates = iid_theory.split_rates(dyn)
-    solver = iid_theory._compiled_solver(static, 1e-6, 1e-8, 1000)
-    weights = (jnp.asarray(x) for x in (start.Q, start.R, start.T, start.v))
-    args = (jnp.linspace(0.0, 1.0, 3), jnp.asarray(rates), *weights, jnp.ones((1, 2)))
-    text = solver.lower(*args).as_text()
+    piece = iid_theory._compiled_piece(static, 1e-6, 1e-8, 16)
+    carry = iid_theory._compiled_start(1)(jnp.zeros(1), tuple(jnp.asarray(x) for x in (start.Q, start.R, start.v)))
+    args = (jnp.linspace(0.0, 1.0, 3), np.bool_(True), jnp.asarray(rates), carry, jnp.asarray(start.T), jnp.ones((1, 2)))
+    text = piece.lower(*args).as_text()
     assert "callback" not in text.lower()
 
 
@@ -67,11 +67,11 @@ def test_a_sweep_over_learning_rates_and_noise_compiles_one_solver():
     dyn, start = _dyn_and_start()
     times = np.linspace(0.0, 5.0, 4)
     iid_theory.solve(dyn, start, np.ones((1, 2)), times, rtol=1e-7, atol=1e-9)
-    compiled_before = iid_theory._compiled_solver.cache_info().misses
+    compiled_before = iid_theory._compiled_piece.cache_info().misses
     with CompileClock() as clock:
         slow = iid_theory.solve(dyn._replace(learning_rate=0.1), start, np.ones((1, 2)), times, rtol=1e-7, atol=1e-9)
         noisy = iid_theory.solve(dyn._replace(noise_std=0.5), start, np.ones((1, 2)), times, rtol=1e-7, atol=1e-9)
-    assert iid_theory._compiled_solver.cache_info().misses == compiled_before
+    assert iid_theory._compiled_piece.cache_info().misses == compiled_before
     assert clock.compile_s == 0.0
     # the rates do reach the program: a smaller learning rate moves R less, noise inflates Q
     base = iid_theory.solve(dyn, start, np.ones((1, 2)), times, rtol=1e-7, atol=1e-9)

@@ -10,9 +10,9 @@ a = (v_1..K, -vt_1..M), Delta = sum_c a_c g_c(u_c):
   dQ_kl/dt = -eta v_k H[l, k] - eta v_l H[k, l] + eta^2 v_k v_l J[k, l]
   dv_k/dt  = -eta_v sum_c a_c I2(k, c)                     (second layer trained only)
 
-The system is integrated by :func:`harness.equations.ode_solve.integrate` (diffrax's Tsit5 at the
-scenario's rtol/atol), saved at the evaluation times, one solve per seed, vmapped over
-seeds, in float64.
+The system is integrated by :mod:`harness.equations.ode_solve` (diffrax's Tsit5 at the
+scenario's rtol/atol, in pieces of the time grid that report progress), saved at the
+evaluation times, one solve per seed, vmapped over seeds, in float64.
 """
 
 from __future__ import annotations
@@ -27,7 +27,7 @@ import numpy as np
 from harness.core.devices import split_over_seeds
 from harness.core.scenario import Scenario
 from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
-from harness.equations.ode_solve import integrate
+from harness.equations.ode_solve import Carry, integrate_piece, solve_in_pieces, start_carry
 
 Array = jax.Array
 
@@ -117,25 +117,34 @@ def with_rates(static: Dynamics, rates: Array) -> Dynamics:
     return static._replace(**{field: rates[i] for i, field in enumerate(RATE_FIELDS)})
 
 
-@functools.cache
-def _compiled_solver(static: Dynamics, rtol: float, atol: float, max_steps: int, seeds: int = 1):
-    """The vmapped, jitted solve for one set of static settings, built once per process.
+STEPS_PER_PIECE = 16
+"""Accepted-or-rejected steps per piece of a solve (harness.equations.ode_solve.solve_in_pieces)."""
 
-    Evaluation times and rates are arguments, so runs with the same activations, sizes and
-    tolerances (the sizes of a finite-size scan, the learning rates of a sweep, baseline
-    checks) compile once per shape instead of once per call. The seeds are split across the
-    host's XLA devices (one per core) exactly as the simulator splits them
+
+@functools.cache
+def _compiled_piece(static: Dynamics, rtol: float, atol: float, steps: int, seeds: int = 1):
+    """One piece of every seed's solve (harness.equations.ode_solve), built once per process and setting.
+
+    The evaluation times, the carry and the rates are arguments, so runs with the same
+    activations, sizes and tolerances (the sizes of a finite-size scan, the learning rates of
+    a sweep, baseline checks) compile once per shape instead of once per call. The seeds are
+    split across the host's XLA devices (one per core) exactly as the simulator splits them
     (harness.core.devices.split_over_seeds): each device solves its share in its own loop.
     """
 
-    def one(Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array, rates: Array):
+    def one(carry: Carry, T: Array, vt: Array, times: Array, first: Array, rates: Array):
         dyn = with_rates(static, rates)
         field = lambda t, y: vector_field(dyn, y, T, vt)  # noqa: E731
-        (Q, R, v), _ = integrate(field, (Q0, R0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps)
-        return Q, R, jnp.broadcast_to(T, ts.shape + T.shape), v
+        return integrate_piece(field, carry, times, first, rtol=rtol, atol=atol, steps=steps)
 
-    split = split_over_seeds(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, None, None)), seeds, replicated=2)
-    return jax.jit(lambda ts, rates, Q0, R0, T, v0, vt: split(Q0, R0, T, v0, vt, ts, rates))
+    split = split_over_seeds(jax.vmap(one, in_axes=(0, 0, 0, None, None, None)), seeds, replicated=3)
+    return jax.jit(lambda times, first, rates, carry, T, vt: split(carry, T, vt, times, first, rates))
+
+
+@functools.cache
+def _compiled_start(seeds: int):
+    """The carry before the first piece, placed as the pieces expect it (split over devices like them)."""
+    return jax.jit(split_over_seeds(jax.vmap(start_carry), seeds))
 
 
 def solve(
@@ -151,15 +160,21 @@ def solve(
     """Integrate every seed's ODE from its own initial order parameters.
 
     ``initial`` and ``teacher_v`` carry a leading seed axis; the result has shape
-    ``[seeds, times, ...]``. Float64 throughout.
+    ``[seeds, times, ...]`` (numpy, float64). The solve runs in pieces of
+    :data:`STEPS_PER_PIECE` steps (:func:`harness.equations.ode_solve.solve_in_pieces`), which
+    report progress; a seed whose solve fails or needs more than ``max_steps`` steps is NaN.
     """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
     static, rates = split_rates(dyn)
-    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps), int(np.shape(initial.Q)[0]))
-    Q, R, T, v = solver(
-        f64(times), f64(rates), f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v)
+    seeds = int(np.shape(initial.Q)[0])
+    times = np.asarray(times, np.float64)
+    piece = _compiled_piece(static, float(rtol), float(atol), min(STEPS_PER_PIECE, int(max_steps)), seeds)
+    T, vt, rates, ts = f64(initial.T), f64(teacher_v), f64(rates), f64(times)
+    carry = _compiled_start(seeds)(f64(np.full(seeds, times[0])), (f64(initial.Q), f64(initial.R), f64(initial.v)))
+    (Q, R, v), _ = solve_in_pieces(
+        lambda carry, first: piece(ts, first, rates, carry, T, vt), carry, times, max_steps=int(max_steps)
     )
-    return OrderParameters(Q, R, T, v)
+    return OrderParameters(Q, R, np.repeat(np.asarray(T)[:, None], len(times), axis=1), v)
 
 
 @functools.cache

@@ -26,8 +26,9 @@ binned into ``theory.bins`` equal-probability bins, and t(rho) = gamma (rho - ka
 It is paired with the seed through its exact Q, R, T and student norms (see
 :func:`thermodynamic_spectra`).
 
-Every solve is :func:`harness.equations.ode_solve.integrate` (diffrax's Tsit5) at the scenario's rtol
-and atol, one solve per seed (vmapped), float64, compiled once per shape and settings.
+Every solve is :mod:`harness.equations.ode_solve` (diffrax's Tsit5, in pieces that report progress)
+at the scenario's rtol and atol, one solve per seed (vmapped), float64, compiled once per shape
+and settings.
 """
 
 from __future__ import annotations
@@ -48,7 +49,7 @@ from harness.core.scenario import Scenario, ScenarioError, declare_keys, registe
 from harness.data import feature_covariance
 from harness.data.latent import LATENT_KINDS
 from harness.equations import iid as iid_theory
-from harness.equations.ode_solve import integrate
+from harness.equations.ode_solve import Carry, integrate_piece, solve_in_pieces, start_carry
 from harness.equations.sources import InitialState, Prediction, register_builtin_theory, values_from_order_parameters
 
 Array = jax.Array
@@ -115,13 +116,15 @@ def projected_vector_field(
 
 
 @functools.cache
-def _compiled_solver(static: iid_theory.Dynamics, rtol: float, atol: float, max_steps: int):
-    """The seed-vmapped, jit-compiled solve for one set of static settings (compiled per shape).
+def _compiled_piece(static: iid_theory.Dynamics, rtol: float, atol: float, steps: int):
+    """One piece of every seed's solve, seed-vmapped and jit-compiled (once per shape and settings).
 
-    The rates are run-time inputs (:func:`harness.equations.iid.split_rates`).
+    The rates are run-time inputs (:func:`harness.equations.iid.split_rates`); the solve runs
+    in pieces of ``steps`` steps (harness.equations.ode_solve.solve_in_pieces).
     """
 
-    def one(spec: Spectrum, Q0: Array, R0: Array, T: Array, v0: Array, vt: Array, ts: Array, rates: Array):
+    def one(carry: Carry, spec: Spectrum, Q0: Array, R0: Array, T: Array, vt: Array, times: Array, first: Array,
+            rates: Array):
         dyn = iid_theory.with_rates(static, rates)
 
         def order_parameters(q: Array, r: Array) -> tuple[Array, Array]:
@@ -140,12 +143,14 @@ def _compiled_solver(static: iid_theory.Dynamics, rtol: float, atol: float, max_
             Q, R = order_parameters(q, r)
             return Q, R, v
 
-        (Q, R, v), steps = integrate(
-            field, (spec.q0, spec.r0, v0), ts, rtol=rtol, atol=atol, max_steps=max_steps, observe=save
-        )
-        return Q, R, jnp.broadcast_to(T, (ts.shape[0],) + T.shape), v, steps
+        return integrate_piece(field, carry, times, first, rtol=rtol, atol=atol, steps=steps, observe=save)
 
-    return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None, None)))
+    return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None, None, None)))
+
+
+@functools.cache
+def _compiled_start():
+    return jax.jit(jax.vmap(start_carry))
 
 
 def solve_projected(
@@ -161,18 +166,24 @@ def solve_projected(
 ) -> tuple[iid_theory.OrderParameters, np.ndarray]:
     """Integrate every seed's projected equations; ``spectra`` and ``initial`` carry a seed axis.
 
-    Returns the order parameters ``[S, E, ...]`` (NaN for a seed whose solve failed) and
-    the number of accepted steps per seed.
+    Returns the order parameters ``[S, E, ...]`` (NaN for a seed whose solve failed or took
+    more than ``max_steps`` steps) and the number of steps per seed. The solve runs in pieces
+    of :data:`harness.equations.iid.STEPS_PER_PIECE` steps, which report progress.
     """
     f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
     static, rates = iid_theory.split_rates(dyn)
-    solver = _compiled_solver(static, float(rtol), float(atol), int(max_steps))
-    Q, R, T, v, steps = solver(
-        Spectrum(*(f64(x) for x in spectra)),
-        f64(initial.Q), f64(initial.R), f64(initial.T), f64(initial.v), f64(teacher_v), f64(times), f64(rates),
+    times = np.asarray(times, np.float64)
+    piece = _compiled_piece(static, float(rtol), float(atol), min(iid_theory.STEPS_PER_PIECE, int(max_steps)))
+    spec = Spectrum(*(f64(x) for x in spectra))
+    Q0, R0, T, vt, ts, rates = (f64(x) for x in (initial.Q, initial.R, initial.T, teacher_v, times, rates))
+    seeds = int(np.shape(initial.Q)[0])
+    carry = _compiled_start()(f64(np.full(seeds, times[0])), (spec.q0, spec.r0, f64(initial.v)))
+    (Q, R, v), steps = solve_in_pieces(
+        lambda carry, first: piece(carry, spec, Q0, R0, T, vt, ts, first, rates), carry, times,
+        max_steps=int(max_steps),
     )
-    ops = iid_theory.OrderParameters(np.asarray(Q), np.asarray(R), np.asarray(T), np.asarray(v))
-    return ops, np.asarray(steps)
+    ops = iid_theory.OrderParameters(Q, R, np.repeat(np.asarray(T)[:, None], len(times), axis=1), v)
+    return ops, steps
 
 
 # ---------------------------------------------------------------------------- spectra
