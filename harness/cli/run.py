@@ -59,32 +59,66 @@ def format_judgement(record: dict) -> list[str]:
 
 
 def print_run_summary(stored, scenario, *, stream=None) -> None:
-    """The closing lines of a run: where it is, its cost, its verdict table and its gaps."""
+    """The closing lines of a run: where it is, its cost, its verdict table and its gaps.
+
+    A theory run (``harness theory``) shows its own cost, the simulation it was paired with
+    (if any) and then the same table; one with no simulation shows the theory's key values.
+    """
     from harness.results.comparison import describe_gaps
 
     stream = stream or sys.stdout
     timings = stored.manifest["timings"]
     s = scenario
+    theory_run = stored.manifest.get("kind") == "theory"
     if stored.skipped:
         stream.write(f"run {stored.run_id} already complete in {stored.folder} (use --force to redo); stored:\n")
     else:
         stream.write(f"run {stored.run_id} -> {stored.folder}\n")
-    costs = f"theory {timings['theory_s']:.2f} s"
-    if stored.manifest.get("kind") != "theory":
-        costs = f"simulation {timings['simulation_s']:.1f} s, " + costs
-    stream.write(
-        f"  {s['run']['seeds']} seeds, N = {s['data']['input_dim']}, K = {s['student']['hidden']}, "
-        f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}; {costs}; compiling: simulation "
-        f"{timings['compile_s']:.1f} s, theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
-    )
+    shape = (f"{s['run']['seeds']} seeds, N = {s['data']['input_dim']}, K = {s['student']['hidden']}, "
+             f"M = {s['teacher']['hidden']}, t = {s['sgd']['time']:g}")
+    theory_cost = f"theory {timings['theory_s']:.2f} s (compiling {timings.get('theory_compile_s', 0.0):.1f} s)"
+    if theory_run:
+        paired = stored.manifest.get("simulation")
+        against = (f"paired with the stored simulation of run {paired['run_id']}" if paired
+                   else "no stored simulation to judge it against")
+        stream.write(f"  {shape}; {theory_cost}; {against}\n")
+    else:
+        stream.write(
+            f"  {shape}; simulation {timings['simulation_s']:.1f} s, {theory_cost.split(' (')[0]}; compiling: "
+            f"simulation {timings['compile_s']:.1f} s, theory {timings.get('theory_compile_s', 0.0):.1f} s\n"
+        )
     if stored.manifest.get("diverged_count"):
         stream.write(f"  {stored.manifest['diverged_count']} seed(s) diverged and left the averages\n")
-    if stored.manifest.get("kind") == "theory" or stored.judgement is None:
+    if theory_run and not stored.manifest.get("simulation"):
+        for line in theory_key_values(stored.folder):
+            stream.write(f"  {line}\n")
+        return
+    if stored.judgement is None:
         return
     for line in format_judgement(stored.judgement):
         stream.write(line + "\n")
     for line in describe_gaps(stored.judgement.get("gaps", {})):
         stream.write(f"  {line}\n")
+
+
+def theory_key_values(folder) -> list[str]:
+    """A theory's test error at the start and the end, with its spread over seeds (from trajectories.parquet)."""
+    import numpy as np
+    import pandas as pd
+
+    table = pd.read_parquet(Path(folder) / "trajectories.parquet", columns=["seed", "t", "observable", "theory"])
+    error = table[table["observable"] == "test_error"].pivot(index="seed", columns="t", values="theory")
+    lines = []
+    for label, t in (("initial", error.columns.min()), ("final", error.columns.max())):
+        values = error[t].to_numpy()
+        values = values[np.isfinite(values)]
+        if not len(values):
+            lines.append(f"{label} test error (t = {t:g}): not predicted")
+            continue
+        spread = (f", spread over {len(values)} seeds {np.std(values, ddof=1):.3g} (std), "
+                  f"{values.min():.4g} to {values.max():.4g}") if len(values) > 1 else ""
+        lines.append(f"{label} test error (t = {t:g}): {values.mean():.4g}{spread}")
+    return lines
 
 
 def verdict_status(stored) -> int:
@@ -95,27 +129,86 @@ def verdict_status(stored) -> int:
     return EXIT_STATUS[verdict]
 
 
-def _cmd_run(args: argparse.Namespace) -> int:
-    scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
-    from harness.runner.pipeline import run_and_store
+def _interrupted_message(kept: Path) -> str:
+    """The one line of an interrupted run: what it left for the next one (harness.runner.checkpoint)."""
+    from harness.runner.checkpoint import FILE_NAME, FINISHED_NAME
+
+    message = "harness: interrupted; nothing half-written was left behind"
+    if (kept / FINISHED_NAME).is_file():
+        return message + f"; the finished simulation is kept in {kept}: rerun to go on without simulating again"
+    if (kept / FILE_NAME).is_file():
+        return message + f"; the simulation's progress is kept in {kept}: rerun to continue from it"
+    return message
+
+
+def _progress_line(quiet: bool):
+    """One progress line for a run's phases: the simulation (steps), then the theory (t covered)."""
     from harness.runner.progress import Progress
 
-    with Progress("simulating", 1, enabled=not args.quiet) as bar:
+    line = Progress("simulating", 1, enabled=not quiet)
 
-        def report(done: int, total: int) -> None:
-            bar.total = total
-            bar.update(done, f"step {done}/{total}")
+    def simulation(done: int, total: int) -> None:
+        line.total = total
+        line.update(done, f"step {done}/{total}")
 
-        stored = run_and_store(scenario, args.out, force=args.force, progress=report)
+    def theory(covered: float, total: float) -> None:
+        if line.label != "theory":
+            line.restart("theory", total)
+        line.total = total
+        line.update(covered, f"t {covered:.4g}/{total:.4g}")
+
+    return line, simulation, theory
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
+    from harness.core import interrupts
+    from harness.core.scenario import run_id
+    from harness.runner.checkpoint import checkpoint_folder
+    from harness.runner.pipeline import run_and_store
+
+    kept = checkpoint_folder(args.out, run_id(scenario))
+    try:
+        with interrupts.guard(lambda: _interrupted_message(kept)):
+            line, simulation, theory = _progress_line(args.quiet)
+            with line:
+                stored = run_and_store(scenario, args.out, force=args.force, progress=simulation,
+                                       theory_progress=theory)
+    except KeyboardInterrupt:
+        interrupts.report(_interrupted_message(kept))
+        return interrupts.EXIT_STATUS
     print_run_summary(stored, scenario)
     return verdict_status(stored)
 
 
+def _theory_target(args: argparse.Namespace):
+    """The scenario and results folder ``harness theory`` works on: a scenario file, or a stored run's folder."""
+    from harness.core.errors import InputError
+    from harness.results.store import is_complete_run
+
+    target = Path(args.scenario) if args.scenario else None
+    if target is None or not target.is_dir():
+        return _load_scenario(args.scenario), args.out
+    if not is_complete_run(target):
+        raise InputError(f"'{target}': a folder, but not a complete run (scenario.toml, manifest.json and its "
+                         "tables); give a run folder or a scenario file")
+    return _load_scenario(str(target / "scenario.toml")), target.parent
+
+
 def _cmd_theory(args: argparse.Namespace) -> int:
-    scenario = _load_scenario(args.scenario)
+    scenario, out = _theory_target(args)
+    from harness.core import interrupts
     from harness.runner.pipeline import theory_and_store
 
-    stored = theory_and_store(scenario, args.out, force=args.force)
+    try:
+        with interrupts.guard(lambda: "harness: interrupted; nothing half-written was left behind"):
+            line, _, theory = _progress_line(args.quiet)
+            line.restart("theory", 1)
+            with line:
+                stored = theory_and_store(scenario, out, force=args.force, progress=theory)
+    except KeyboardInterrupt:
+        interrupts.report("harness: interrupted; nothing half-written was left behind")
+        return interrupts.EXIT_STATUS
     print_run_summary(stored, scenario)
     return verdict_status(stored)
 
@@ -135,14 +228,18 @@ def add_run_commands(subparsers) -> None:
     run.set_defaults(handler=_cmd_run)
 
     theory = subparsers.add_parser(
-        "theory", help="solve the theory alone from the initial conditions a run would draw",
-        description="Solve the scenario's theory alone, from the initial conditions a run would draw, and store it. "
-        "Exit status: 0 (or, when judged against a stored simulation, 0 agree, 1 disagree, 3 inconclusive), "
-        "2 bad input.",
+        "theory", help="solve the theory alone (judged against the stored simulation, if there is one)",
+        description="Solve the scenario's theory alone, from the initial conditions a run draws, and store it in "
+        "OUT/<run_id>-theory/. When the run itself is stored (OUT/<run_id>/, or the run folder given), the theory "
+        "is paired with its simulation seed by seed and judged as 'harness run' judges, without simulating again. "
+        "Exit status: 0 agree, 1 disagree, 3 inconclusive (0 with no simulation to judge against), 2 bad input.",
     )
-    theory.add_argument("scenario", nargs="?", help="scenario TOML file (default: the embedded default scenario)")
-    theory.add_argument("--out", type=Path, default=DEFAULT_OUT, help="results folder (default: results/)")
+    theory.add_argument("scenario", nargs="?", metavar="SCENARIO_OR_RUN",
+                        help="scenario TOML file, or a stored run's folder (default: the embedded default scenario)")
+    theory.add_argument("--out", type=Path, default=DEFAULT_OUT,
+                        help="results folder (default: results/; a run folder's own results folder when one is given)")
     theory.add_argument("--force", action="store_true", help="redo an identical stored theory run")
+    theory.add_argument("--quiet", action="store_true", help="no progress line")
     theory.set_defaults(handler=_cmd_theory)
 
 

@@ -38,6 +38,8 @@ from typing import Any
 
 import pandas as pd
 
+from harness.core import interrupts
+
 
 def _host_tag() -> str:
     return re.sub(r"[^A-Za-z0-9_]", "_", socket.gethostname()) or "host"
@@ -92,16 +94,17 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> None:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_CLOEXEC", 0)
-    temporary, handle = _create_temporary(path.parent, path.name, lambda name: os.open(name, flags, 0o666))
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            stream.write(data)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(temporary, path)
-    except BaseException:
-        temporary.unlink(missing_ok=True)
-        raise
+    with interrupts.writing():  # a Ctrl-C's watchdog lets the write finish (harness.core.interrupts)
+        temporary, handle = _create_temporary(path.parent, path.name, lambda name: os.open(name, flags, 0o666))
+        try:
+            with os.fdopen(handle, "wb") as stream:
+                stream.write(data)
+                stream.flush()
+                os.fsync(stream.fileno())
+            os.replace(temporary, path)
+        except BaseException:
+            temporary.unlink(missing_ok=True)
+            raise
 
 
 def atomic_write_text(path: str | Path, text: str) -> None:
@@ -192,11 +195,12 @@ def staging_folder(out_dir: str | Path, name: str) -> Iterator[Path]:
     """
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    staging, _ = _create_temporary(out_dir, name, lambda candidate: os.mkdir(candidate, 0o777))
-    try:
-        yield staging
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
+    with interrupts.writing():  # until published or removed (harness.core.interrupts)
+        staging, _ = _create_temporary(out_dir, name, lambda candidate: os.mkdir(candidate, 0o777))
+        try:
+            yield staging
+        except BaseException:
+            shutil.rmtree(staging, ignore_errors=True)
+            raise
 
 

@@ -372,4 +372,4 @@ def check_limit(s: Scenario) -> None:
 declare_keys("theory", KEYS)
 register_check(check_limit)
 for _kind in LATENT_KINDS:
-    register_builtin_theory(_kind, builtin_latent)
+    register_builtin_theory(_kind, builtin_latent, check_start=lambda scenario, start: check_invertible(start))

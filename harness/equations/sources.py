@@ -80,6 +80,8 @@ SOURCES: dict[str, TheoryFn] = {}
 """Every registered ``theory.source`` (a key ending in ":" is a prefix: "python:", "file:")."""
 BUILTIN_THEORIES: dict[str, TheoryFn] = {}
 """The built-in theory of each data kind (``theory.source = "builtin"``)."""
+START_CHECKS: dict[str, Callable[[Scenario, InitialState], None]] = {}
+"""Checks of the initial conditions a built-in theory needs (raise InputError), by data kind."""
 
 
 def register_source(
@@ -102,9 +104,17 @@ def register_source(
     SOURCES[name] = theory
 
 
-def register_builtin_theory(data_kind: str, theory: TheoryFn) -> None:
-    """The theory ``theory.source = "builtin"`` uses for ``data.kind = data_kind``."""
+def register_builtin_theory(
+    data_kind: str, theory: TheoryFn, *, check_start: Callable[[Scenario, InitialState], None] | None = None
+) -> None:
+    """The theory ``theory.source = "builtin"`` uses for ``data.kind = data_kind``.
+
+    ``check_start(scenario, start)``, if given, refuses initial conditions the theory cannot
+    start from (raise InputError); :func:`check_before_simulating` runs it before a run simulates.
+    """
     BUILTIN_THEORIES[data_kind] = theory
+    if check_start is not None:
+        START_CHECKS[data_kind] = check_start
 
 
 def is_plain_sgd(scenario: Scenario) -> bool:
@@ -157,6 +167,24 @@ def _builtin_exists(scenario: Scenario) -> None:
 register_source("builtin", _builtin, check=_builtin_exists)
 register_source("none", _no_theory)
 register_builtin_theory("gaussian", builtin_iid)
+
+
+def check_before_simulating(scenario: Scenario, start: InitialState, times: np.ndarray) -> None:
+    """Refuse a theory that cannot work before a run spends time simulating (a run solves it afterwards).
+
+    A built-in theory runs its checks of the initial conditions; any other source (a user's
+    Python theory, a file) is asked for the first two evaluation times only, so that a theory
+    that raises or returns the wrong shapes is reported at once, at the cost of a short solve.
+    """
+    source = chosen("theory.source", scenario.theory.source)
+    if source == "none":
+        return
+    if source == "builtin" and scenario.data.kind in BUILTIN_THEORIES:
+        check = START_CHECKS.get(scenario.data.kind)
+        if check is not None:
+            check(scenario, start)
+        return
+    predict(scenario, start, np.asarray(times)[:2])
 
 
 def predict(scenario: Scenario, start: InitialState, times: np.ndarray) -> Prediction:

@@ -174,3 +174,60 @@ class Checkpointer:
     def _reject(self, why: str) -> None:
         warnings.warn(f"ignoring checkpoint '{self.path}': {why}", RuntimeWarning, stacklevel=3)
         return None
+
+
+# ------------------------------------------------------------- a finished simulation
+
+FINISHED_NAME = "simulation.npz"
+"""A finished simulation's observations, kept beside the checkpoint until the run is stored."""
+
+
+def save_finished(
+    folder: str | Path, run_id: str, steps: np.ndarray, observations: dict[str, np.ndarray], timings: dict[str, float]
+) -> None:
+    """Keep a finished simulation's observations (``[S, E, ...]`` arrays by name) until its run is stored.
+
+    A run interrupted after its simulation (in the theory, the comparison, the storing) then
+    reruns without simulating again: :func:`load_finished` hands the observations back. The
+    weights are not kept (nothing continues from them), so this is small whatever N is; the
+    state checkpoint, of no more use, is removed. A failure to write warns, and the run goes on.
+    """
+    folder = Path(folder)
+    meta = {"format": FORMAT_VERSION, "run_id": run_id, "fields": list(observations), "timings": timings,
+            "saved_at": time.time()}
+    arrays = {f"observations/{name}": np.asarray(value) for name, value in observations.items()}
+    arrays["identity/steps"] = np.asarray(steps, np.int64)
+    arrays["meta"] = np.frombuffer(json_text(meta, indent=None).encode("utf-8"), dtype=np.uint8)
+    buffer = io.BytesIO()
+    np.savez(buffer, **arrays)
+    try:
+        atomic_write_bytes(folder / FINISHED_NAME, buffer.getvalue())
+    except OSError as error:
+        warnings.warn(f"cannot keep the finished simulation in '{folder}' ({error}); an interrupted run "
+                      "would simulate again", RuntimeWarning, stacklevel=2)
+        return
+    (folder / FILE_NAME).unlink(missing_ok=True)
+
+
+def load_finished(
+    folder: str | Path, run_id: str, steps: np.ndarray
+) -> tuple[dict[str, np.ndarray], dict[str, float]] | None:
+    """The observations and timings :func:`save_finished` kept for this run, or None (warned if unusable)."""
+    path = Path(folder) / FINISHED_NAME
+    if not path.is_file():
+        return None
+    try:
+        with np.load(path, allow_pickle=False) as saved:
+            arrays = {name: saved[name] for name in saved.files}
+        meta = json.loads(arrays.pop("meta").tobytes().decode("utf-8"))
+        observations = {name: arrays[f"observations/{name}"] for name in meta["fields"]}
+    except Exception as error:  # a damaged file is never trusted
+        warnings.warn(f"ignoring '{path}': it cannot be read ({type(error).__name__})", RuntimeWarning, stacklevel=2)
+        return None
+    if meta.get("format") != FORMAT_VERSION or meta.get("run_id") != run_id:
+        warnings.warn(f"ignoring '{path}': it belongs to another run or format", RuntimeWarning, stacklevel=2)
+        return None
+    if not np.array_equal(arrays.get("identity/steps"), np.asarray(steps, np.int64)):
+        warnings.warn(f"ignoring '{path}': its evaluation steps differ", RuntimeWarning, stacklevel=2)
+        return None
+    return observations, dict(meta.get("timings") or {})

@@ -1,10 +1,12 @@
 """One experiment: simulate a scenario's ensemble and pair it with its theory.
 
 This is the orchestration layer between the pure pieces: it compiles the simulator
-once, steps it from one evaluation time to the next, records observations, computes
-the simulation's overlap error from its own order parameters, asks the theory for
-predictions from the very same initial conditions, and returns paired
-:class:`~harness.core.trajectories.Trajectories` with timings.
+once, steps it from one evaluation time to the next (in slices short enough to hear a
+Ctrl-C, harness.core.interrupts), records observations, computes the simulation's overlap
+error from its own order parameters, asks the theory for predictions from the very same
+initial conditions, and returns paired :class:`~harness.core.trajectories.Trajectories`
+with timings. An interrupted run keeps what it finished (harness.runner.checkpoint): the
+simulation's progress, or the whole simulation when the theory was being solved.
 """
 
 from __future__ import annotations
@@ -19,12 +21,15 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from harness.core import interrupts
 from harness.core import times as time_grid
 from harness.core.scenario import Scenario, run_id
 from harness.core.trajectories import Trajectories, observable_names, stack_observables
 from harness.equations import iid as iid_theory
-from harness.equations.sources import InitialState, predict
-from harness.runner.checkpoint import Checkpointer
+from harness.equations.ode_solve import ProgressReport as SolveProgress
+from harness.equations.ode_solve import reporting_progress
+from harness.equations.sources import InitialState, Prediction, check_before_simulating, predict
+from harness.runner.checkpoint import Checkpointer, load_finished, save_finished
 from harness.runner.compile_clock import CompileClock
 from harness.sim import simulation
 from harness.sim.engines import engine_of
@@ -52,22 +57,45 @@ class ExperimentResult(NamedTuple):
     data_notes: dict | None = None  # the data model's description of its instances (manifest "data_model")
 
 
+SLICE_S = 0.25
+"""Wall time aimed at per call of the simulator: a Ctrl-C is heard between calls (harness.core.interrupts)."""
+KEEP_START_BYTES = 256 * 2**20
+"""Initial conditions larger than this (latent models' Omega and Phi) are drawn again for the theory
+after the simulation instead of being held in memory during it."""
+
+
 def simulate(
     scenario: Scenario, *, progress: ProgressFn | None = None, checkpoint_dir: str | Path | None = None
 ) -> SimulationResult:
     """Train every seed's student and record observables at the evaluation times.
 
-    With ``checkpoint_dir``, the state is saved there every ``run.checkpoint_minutes``
-    and a matching checkpoint found there is resumed from (:mod:`harness.runner.checkpoint`);
-    the results are bit-identical either way.
+    With ``checkpoint_dir`` (and ``run.checkpoint_minutes`` > 0), the state is saved there
+    every ``run.checkpoint_minutes`` and when a Ctrl-C stops the loop, and a matching
+    checkpoint found there is resumed from (:mod:`harness.runner.checkpoint`); a finished
+    simulation is kept there until its run is stored, and found again instead of simulating.
+    The results are bit-identical either way.
+
+    The simulator is called in slices of about :data:`SLICE_S` seconds between evaluation
+    times (the step at which a call stops changes nothing: every sample is keyed by its
+    absolute step), so that a Ctrl-C is heard within a slice.
     """
     # run.engine: "full" trains the weights, "chain" steps the order parameters exactly; same interface.
     engine = engine_of(scenario)
-    sim = engine.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)
     steps = time_grid.evaluation_steps(scenario)
     t = steps / scenario.data.input_dim
+    identity = run_id(scenario)
+    keeping = checkpoint_dir is not None and scenario.run.checkpoint_minutes > 0
+    if keeping:
+        finished = load_finished(checkpoint_dir, identity, steps)
+        if finished is not None and set(finished[0]) == set(simulation.Observation._fields):
+            observations, timings = finished
+            return _simulation_result(
+                scenario, seeds, steps, t, simulation.Observation(**observations),
+                timings.get("compile_s", 0.0), timings.get("simulation_s", 0.0), int(steps[-1]),
+            )
 
+    sim = engine.make_simulator(scenario)
     started = time.perf_counter()
     instance, state = engine.init_ensemble(sim, seeds)
     target0 = jnp.asarray(0, dtype=state.step.dtype)
@@ -81,23 +109,54 @@ def simulate(
     checkpointer, first, resumed_from_step = None, 0, 0
     if checkpoint_dir is not None:
         checkpointer = Checkpointer(
-            checkpoint_dir, 60.0 * scenario.run.checkpoint_minutes, run_id(scenario), steps, instance.train_key
+            checkpoint_dir, 60.0 * scenario.run.checkpoint_minutes, identity, steps, instance.train_key
         )
         restored = checkpointer.restore(state, observe.out_info)
         if restored is not None:
             state, records, first = restored.state, restored.records, restored.evaluations_done
-            resumed_from_step = int(steps[first - 1]) if first > 0 else 0
-    for index in range(first, len(steps)):
-        step = steps[index]
-        state = advance(instance, state, jnp.asarray(step, dtype=state.step.dtype))
-        records.append(jax.device_get(observe(instance, state)))
-        if checkpointer is not None and 0 < step < steps[-1]:  # nothing to save at the start or the end
-            checkpointer.maybe_save(index + 1, state, records)
-        if progress is not None:
-            progress(int(step), int(steps[-1]))
+            resumed_from_step = int(np.asarray(state.step)[0])
+    block = max(1, int(getattr(sim, "block_steps", 1)))
+    slice_steps, current = 8 * block, int(np.asarray(state.step)[0])
+    try:
+        for index in range(first, len(steps)):
+            target = int(steps[index])
+            while current < target:
+                stop = min(target, current + slice_steps)
+                began = time.perf_counter()
+                with interrupts.deferred():  # the old state's buffers are donated: replace it whole
+                    state = jax.block_until_ready(advance(instance, state, jnp.asarray(stop, dtype=state.step.dtype)))
+                    done, current = stop - current, stop
+                rate = done / max(time.perf_counter() - began, 1e-6)
+                slice_steps = int(np.clip(rate * SLICE_S, block, 8 * slice_steps))  # grow gently
+            records.append(jax.device_get(observe(instance, state)))
+            if checkpointer is not None and 0 < target < steps[-1]:  # nothing to save at the start or the end
+                checkpointer.maybe_save(index + 1, state, records)
+            if progress is not None:
+                progress(target, int(steps[-1]))
+    except KeyboardInterrupt:
+        if checkpointer is not None and checkpointer.enabled and 0 < current < steps[-1]:
+            checkpointer.save(len(records), state, records)  # where it stopped, for the next run
+        raise
     simulation_s = time.perf_counter() - started
 
     stacked = jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)  # [S, E, ...]
+    if keeping:
+        save_finished(checkpoint_dir, identity, steps, dict(stacked._asdict()),
+                      {"compile_s": compile_s, "simulation_s": simulation_s})
+    return _simulation_result(scenario, seeds, steps, t, stacked, compile_s, simulation_s, resumed_from_step)
+
+
+def _simulation_result(
+    scenario: Scenario,
+    seeds: np.ndarray,
+    steps: np.ndarray,
+    t: np.ndarray,
+    stacked: simulation.Observation,
+    compile_s: float,
+    simulation_s: float,
+    resumed_from_step: int,
+) -> SimulationResult:
+    """Observables, overlap errors and divergence times from the recorded observations ``[S, E, ...]``."""
     dyn = iid_theory.dynamics_of(scenario)
     teacher_v = np.broadcast_to(
         np.asarray(scenario.teacher.second_layer, np.float64),
@@ -127,47 +186,63 @@ def simulate(
             f"{count} of {len(seeds)} seeds diverged (weights became non-finite; "
             "learning rate too large?); they are left out of every average from then on",
             RuntimeWarning,
-            stacklevel=2,
+            stacklevel=3,
         )
     return SimulationResult(seeds, steps, t, values, diverged_at, compile_s, simulation_s, resumed_from_step)
 
 
-def theory_only(scenario: Scenario) -> tuple[np.ndarray, InitialState, np.ndarray, CompileClock]:
+def theory_only(
+    scenario: Scenario, *, progress: SolveProgress | None = None
+) -> tuple[np.ndarray, InitialState, Prediction, CompileClock]:
     """Solve the theory alone from the initial conditions a run would draw.
 
-    Returns ``(t, start, values [S, E, O], clock)``; ``clock`` splits the theory's time
-    into compiling and solving (:class:`~harness.runner.compile_clock.CompileClock`).
+    Returns ``(t, start, prediction, clock)`` (``prediction.values`` is ``[S, E, O]``);
+    ``clock`` splits the theory's time into compiling and solving
+    (:class:`~harness.runner.compile_clock.CompileClock`).
+    ``progress(t_covered, t_total)`` follows the built-in theories' solves.
     """
     sim = simulation.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)
     t = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
-    with CompileClock() as clock:
+    with CompileClock() as clock, reporting_progress(progress):
         prediction = predict(scenario, start, t)
-    return t, start, prediction.values, clock
+    return t, start, prediction, clock
 
 
 def run_experiment(
-    scenario: Scenario, *, progress: ProgressFn | None = None, checkpoint_dir: str | Path | None = None
+    scenario: Scenario,
+    *,
+    progress: ProgressFn | None = None,
+    checkpoint_dir: str | Path | None = None,
+    theory_progress: SolveProgress | None = None,
 ) -> ExperimentResult:
     """Simulation and paired theory of a resolved scenario (checkpointed in ``checkpoint_dir``).
 
-    The theory is solved first: it needs only the initial conditions, and a user theory
-    that fails or returns the wrong shapes is then reported before any simulation time is
-    spent.
+    Order: the initial conditions; what can be checked of the theory without solving it
+    (:func:`harness.equations.sources.check_before_simulating`: a user theory is tried on the
+    first two evaluation times, so one that fails or returns the wrong shapes is reported
+    before any simulation time is spent); the simulation, kept in ``checkpoint_dir`` once
+    finished; the theory, whose progress ``theory_progress(t_covered, t_total)`` follows. A
+    Ctrl-C during the theory therefore leaves the finished simulation for the next run.
     """
     sim = simulation.make_simulator(scenario)
     seeds = np.arange(scenario.run.seeds)
     if scenario.run.engine == "full":
-        simulation.check_test_set_fits(sim, len(seeds))  # before the theory's time is spent
+        simulation.check_test_set_fits(sim, len(seeds))  # before anything else is spent
     times = time_grid.evaluation_steps(scenario) / scenario.data.input_dim
     start = initial_state(sim, seeds)
-    with CompileClock() as theory_clock:
-        prediction = predict(scenario, start, times)
+    with CompileClock() as check_clock:
+        check_before_simulating(scenario, start, times)
     data_notes = None if sim.model.describe is None else sim.model.describe(start.data_params)
-    del start  # latent models: the theory's copy of Omega and Phi ([S, N, N]) is not needed while simulating
+    if _nbytes(start) > KEEP_START_BYTES:
+        start = None  # latent models: Omega and Phi ([S, N, N]) are drawn again after the simulation
     simulated = simulate(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
     assert np.array_equal(simulated.t, times) and np.array_equal(simulated.seeds, seeds)
+    if start is None:
+        start = initial_state(sim, seeds)  # deterministic: the very same draws
+    with CompileClock() as theory_clock, reporting_progress(theory_progress):
+        prediction = predict(scenario, start, times)
     trajectories = Trajectories(
         simulated.seeds,
         simulated.t,
@@ -176,16 +251,21 @@ def run_experiment(
         prediction.values,
         prediction.paired,
     )
-    timings = theory_timings(theory_clock) | {
+    timings = theory_timings(check_clock, theory_clock) | {
         "simulation_s": simulated.simulation_s,
         "compile_s": simulated.compile_s,
     }
     return ExperimentResult(trajectories, simulated.diverged_at, timings, simulated.resumed_from_step, data_notes)
 
 
-def theory_timings(clock: CompileClock) -> dict[str, float]:
+def _nbytes(tree: object) -> int:
+    return sum(int(getattr(leaf, "nbytes", 0)) for leaf in jax.tree_util.tree_leaves(tree))
+
+
+def theory_timings(*clocks: CompileClock) -> dict[str, float]:
     """A theory's cost as a run records it: solving (theory_s) apart from compiling (theory_compile_s)."""
-    return {"theory_s": clock.total_s - clock.compile_s, "theory_compile_s": clock.compile_s}
+    compile_s = sum(clock.compile_s for clock in clocks)
+    return {"theory_s": sum(clock.total_s for clock in clocks) - compile_s, "theory_compile_s": compile_s}
 
 
 def _observables(scenario: Scenario) -> list[str]:

@@ -10,6 +10,7 @@ import datetime as _dt
 import json
 import platform
 import sys
+import warnings
 from importlib import metadata
 from pathlib import Path
 from typing import Any, NamedTuple
@@ -19,6 +20,7 @@ import numpy as np
 import pandas as pd
 
 from harness.core import scenario as scenario_lib
+from harness.core.errors import InputError
 from harness.core.files import atomic_write_json, atomic_write_parquet, atomic_write_text
 from harness.core.trajectories import Trajectories, from_frame, observable_names
 from harness.results import comparison
@@ -26,7 +28,7 @@ from harness.results.judgement import Margin
 from harness.results.store import append_index_row, is_complete_run, write_run_folder
 from harness.results.stored import divergence_times, judgement_record
 from harness.runner.checkpoint import checkpoint_folder, discard_checkpoint
-from harness.runner.experiment import ProgressFn, run_experiment, theory_only, theory_timings
+from harness.runner.experiment import ProgressFn, SolveProgress, run_experiment, theory_only, theory_timings
 
 PACKAGES = ("harness", "numpy", "jax", "jaxlib", "optax", "diffrax", "equinox", "pandas", "pyarrow", "scipy")
 
@@ -115,6 +117,7 @@ def compute_run(
     progress: ProgressFn | None = None,
     extra_manifest: dict[str, Any] | None = None,
     checkpoint_dir: str | Path | None = None,
+    theory_progress: SolveProgress | None = None,
 ) -> ComputedRun:
     """Simulate, pair with theory and compare, writing nothing but optional checkpoints.
 
@@ -123,7 +126,9 @@ def compute_run(
     there every ``run.checkpoint_minutes`` and resumes from a checkpoint it finds.
     """
     started = _dt.datetime.now(_dt.UTC)
-    result = run_experiment(scenario, progress=progress, checkpoint_dir=checkpoint_dir)
+    result = run_experiment(
+        scenario, progress=progress, checkpoint_dir=checkpoint_dir, theory_progress=theory_progress
+    )
     extra: dict[str, Any] = {}
     if result.resumed_from_step:
         extra["resumed_from_step"] = result.resumed_from_step
@@ -190,6 +195,7 @@ def run_and_store(
     force: bool = False,
     progress: ProgressFn | None = None,
     extra_manifest: dict[str, Any] | None = None,
+    theory_progress: SolveProgress | None = None,
 ) -> StoredRun:
     """Simulate, pair with theory, compare, and write ``out_dir/<run_id>/`` atomically."""
     run_id = scenario_lib.run_id(scenario)
@@ -199,26 +205,92 @@ def run_and_store(
     checkpoints = checkpoint_folder(out_dir, run_id)
     if force:
         discard_checkpoint(checkpoints)  # redo from the start, as asked
-    computed = compute_run(scenario, progress=progress, extra_manifest=extra_manifest, checkpoint_dir=checkpoints)
+    computed = compute_run(scenario, progress=progress, extra_manifest=extra_manifest, checkpoint_dir=checkpoints,
+                           theory_progress=theory_progress)
     return store_run(computed, out_dir, force=force)
 
 
-def theory_and_store(scenario: scenario_lib.Scenario, out_dir: str | Path, *, force: bool = False) -> StoredRun:
-    """Solve the theory alone and write the same tables (``sim`` columns are NaN)."""
-    folder = Path(out_dir) / (scenario_lib.run_id(scenario) + "-theory")
-    if is_complete_run(folder) and not force:
+def theory_and_store(
+    scenario: scenario_lib.Scenario,
+    out_dir: str | Path,
+    *,
+    force: bool = False,
+    progress: SolveProgress | None = None,
+) -> StoredRun:
+    """Solve the theory alone, pair it with the stored simulation if there is one, and store it.
+
+    The run's folder ``out_dir/<run_id>/``, when complete, gives the simulation: the theory
+    is then judged against it exactly as ``harness run`` judges (the initial conditions are
+    drawn again from the scenario, bit for bit those the run drew). Without one the ``sim``
+    columns are NaN and nothing is judged. Stored in ``out_dir/<run_id>-theory/``; an
+    identical stored theory run paired with the same simulation is reused unless ``force``.
+    """
+    identity = scenario_lib.run_id(scenario)
+    simulated = Path(out_dir) / identity
+    simulated = simulated if is_complete_run(simulated) else None
+    folder = Path(out_dir) / (identity + "-theory")
+    exists = is_complete_run(folder)
+    if exists and not force and _paired_with(folder) == _simulation_of(simulated):
         return judge_stored_run(folder, scenario, out_dir)
-    return store_run(compute_theory(scenario), out_dir, force=force)
+    return store_run(compute_theory(scenario, simulation=simulated, progress=progress), out_dir, force=force or exists)
 
 
-def compute_theory(scenario: scenario_lib.Scenario) -> ComputedRun:
-    """Solve the theory alone from the initial conditions a run would draw; nothing is written."""
+def _simulation_of(folder: Path | None) -> dict[str, Any] | None:
+    """What identifies a stored simulation for a theory paired with it (None: no simulation)."""
+    if folder is None:
+        return None
+    manifest = json.loads((folder / "manifest.json").read_text())
+    return {"run_id": folder.name, "started": manifest.get("started")}
+
+
+def _paired_with(theory_folder: Path) -> dict[str, Any] | None:
+    return json.loads((theory_folder / "manifest.json").read_text()).get("simulation")
+
+
+def compute_theory(
+    scenario: scenario_lib.Scenario,
+    *,
+    simulation: str | Path | None = None,
+    progress: SolveProgress | None = None,
+) -> ComputedRun:
+    """Solve the theory alone from the initial conditions a run would draw; nothing is written.
+
+    With ``simulation`` (a complete run folder of the same scenario), the theory is paired
+    with its stored simulation values and judged. The stored run's theory at t = 0 is the
+    initial conditions themselves: it is compared with the new one, and a difference (a
+    random stream that changed between versions) is warned about, since the pairing would
+    then not be exact.
+    """
     started = _dt.datetime.now(_dt.UTC)
-    t, start, values, clock = theory_only(scenario)
+    t, start, prediction, clock = theory_only(scenario, progress=progress)
     names = observable_names(scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer)
-    traj = Trajectories(start.seeds, t, names, np.full_like(values, np.nan), values)
-    timings = theory_timings(clock) | {"simulation_s": 0.0, "compile_s": 0.0}
-    return computed_run(scenario, traj, started=started, timings=timings, kind="theory")
+    sim_values = np.full_like(prediction.values, np.nan)
+    diverged_at, extra = None, {}
+    if simulation is not None:
+        folder = Path(simulation)
+        manifest = json.loads((folder / "manifest.json").read_text())
+        stored = from_frame(pd.read_parquet(folder / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
+        if not (np.array_equal(stored.seeds, start.seeds) and np.array_equal(stored.t, t)
+                and list(stored.observables) == list(names)):
+            raise InputError(f"run folder '{folder}': its seeds, times or observables are not those its scenario "
+                             "gives now; rerun it (harness run --force)")
+        _warn_if_start_moved(folder, stored.theory[:, 0], prediction.values[:, 0])
+        sim_values, diverged_at = stored.sim, divergence_times(stored, manifest)
+        extra["simulation"] = _simulation_of(folder)
+    traj = Trajectories(start.seeds, t, names, sim_values, prediction.values, prediction.paired)
+    return computed_run(scenario, traj, started=started, timings=theory_timings(clock), diverged_at=diverged_at,
+                        kind="theory", extra_manifest=extra)
+
+
+def _warn_if_start_moved(folder: Path, stored_start: np.ndarray, start: np.ndarray) -> None:
+    both = np.isfinite(stored_start) & np.isfinite(start)
+    if both.any() and not np.array_equal(stored_start[both], start[both]):
+        warnings.warn(
+            f"the initial conditions drawn now differ from those run '{folder.name}' started from (by up to "
+            f"{np.max(np.abs(stored_start[both] - start[both])):.2g}; another version of JAX or harness?): "
+            "the theory is paired with a simulation that started elsewhere",
+            RuntimeWarning, stacklevel=3,
+        )
 
 
 def judge_stored_run(folder: Path, scenario: scenario_lib.Scenario, out_dir: str | Path) -> StoredRun:
