@@ -1,5 +1,12 @@
 """``python -m harness`` is the ``harness`` command."""
 
-from harness.cli.main import main
+try:
+    from harness.cli.main import main
 
-raise SystemExit(main())
+    status = main()
+except KeyboardInterrupt:  # a Ctrl-C while Python and JAX start, before a command can answer it
+    from harness.core import interrupts
+
+    interrupts.report("harness: interrupted; nothing half-written was left behind")
+    status = interrupts.EXIT_STATUS
+raise SystemExit(status)

@@ -15,6 +15,7 @@ import sys
 import warnings
 from collections.abc import Callable, Sequence
 
+from harness.core import interrupts
 from harness.core.configure import configure
 from harness.core.errors import InputError
 
@@ -66,12 +67,12 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
-    configure()  # JAX's process-wide options (harness.core.configure), before any computation
     warnings.simplefilter("default")
     warnings.formatwarning = lambda message, category, *rest: f"harness: warning: {message}\n"
     try:
+        with interrupts.guard():  # start-up imports JAX, which can drop a Ctrl-C (harness.core.interrupts)
+            args = build_parser().parse_args(argv)
+            configure()  # JAX's process-wide options (harness.core.configure), before any computation
         return int(args.handler(args))
     except InputError as error:
         sys.stderr.write(f"harness: error: {error}\n")

@@ -129,14 +129,14 @@ def verdict_status(stored) -> int:
     return EXIT_STATUS[verdict]
 
 
-def _interrupted_message(kept: Path) -> str:
+def _interrupted_message(kept: Path | None) -> str:
     """The one line of an interrupted run: what it left for the next one (harness.runner.checkpoint)."""
+    from harness.core.interrupts import MESSAGE as message
     from harness.runner.checkpoint import FILE_NAME, FINISHED_NAME
 
-    message = "harness: interrupted; nothing half-written was left behind"
-    if (kept / FINISHED_NAME).is_file():
+    if kept is not None and (kept / FINISHED_NAME).is_file():
         return message + f"; the finished simulation is kept in {kept}: rerun to go on without simulating again"
-    if (kept / FILE_NAME).is_file():
+    if kept is not None and (kept / FILE_NAME).is_file():
         return message + f"; the simulation's progress is kept in {kept}: rerun to continue from it"
     return message
 
@@ -161,22 +161,21 @@ def _progress_line(quiet: bool):
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
     from harness.core import interrupts
-    from harness.core.scenario import run_id
-    from harness.runner.checkpoint import checkpoint_folder
-    from harness.runner.pipeline import run_and_store
 
-    kept = checkpoint_folder(args.out, run_id(scenario))
-    try:
-        with interrupts.guard(lambda: _interrupted_message(kept)):
-            line, simulation, theory = _progress_line(args.quiet)
-            with line:
-                stored = run_and_store(scenario, args.out, force=args.force, progress=simulation,
-                                       theory_progress=theory)
-    except KeyboardInterrupt:
-        interrupts.report(_interrupted_message(kept))
-        return interrupts.EXIT_STATUS
+    kept: list[Path] = []
+    # a Ctrl-C: exit status 130 within about a second, one line saying what is kept (harness.core.interrupts);
+    # guarded from the first line on: resolving a scenario imports JAX modules, which can drop a Ctrl-C
+    with interrupts.guard(lambda: _interrupted_message(kept[0] if kept else None)):
+        scenario = _load_scenario(args.scenario)  # validate before any heavy work
+        from harness.core.scenario import run_id
+        from harness.runner.checkpoint import checkpoint_folder
+        from harness.runner.pipeline import run_and_store
+
+        kept.append(checkpoint_folder(args.out, run_id(scenario)))
+        line, simulation, theory = _progress_line(args.quiet)
+        with line:
+            stored = run_and_store(scenario, args.out, force=args.force, progress=simulation, theory_progress=theory)
     print_run_summary(stored, scenario)
     return verdict_status(stored)
 
@@ -196,19 +195,16 @@ def _theory_target(args: argparse.Namespace):
 
 
 def _cmd_theory(args: argparse.Namespace) -> int:
-    scenario, out = _theory_target(args)
     from harness.core import interrupts
-    from harness.runner.pipeline import theory_and_store
 
-    try:
-        with interrupts.guard(lambda: "harness: interrupted; nothing half-written was left behind"):
-            line, _, theory = _progress_line(args.quiet)
-            line.restart("theory", 1)
-            with line:
-                stored = theory_and_store(scenario, out, force=args.force, progress=theory)
-    except KeyboardInterrupt:
-        interrupts.report("harness: interrupted; nothing half-written was left behind")
-        return interrupts.EXIT_STATUS
+    with interrupts.guard():
+        scenario, out = _theory_target(args)
+        from harness.runner.pipeline import theory_and_store
+
+        line, _, theory = _progress_line(args.quiet)
+        line.restart("theory", 1)
+        with line:
+            stored = theory_and_store(scenario, out, force=args.force, progress=theory)
     print_run_summary(stored, scenario)
     return verdict_status(stored)
 

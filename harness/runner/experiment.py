@@ -133,17 +133,25 @@ def simulate(
                 checkpointer.maybe_save(index + 1, state, records)
             if progress is not None:
                 progress(target, int(steps[-1]))
-    except KeyboardInterrupt:
-        if checkpointer is not None and checkpointer.enabled and 0 < current < steps[-1]:
-            checkpointer.save(len(records), state, records)  # where it stopped, for the next run
+        simulation_s = time.perf_counter() - started
+        stacked = _stack(records)
+        if keeping:
+            with interrupts.deferred():
+                save_finished(checkpoint_dir, identity, steps, stacked._asdict(),
+                              {"compile_s": compile_s, "simulation_s": simulation_s})
+    except KeyboardInterrupt:  # keep what is done for the next run
+        if keeping and len(records) == len(steps):
+            save_finished(checkpoint_dir, identity, steps, _stack(records)._asdict(),
+                          {"compile_s": compile_s, "simulation_s": time.perf_counter() - started})
+        elif checkpointer is not None and checkpointer.enabled and 0 < current < steps[-1]:
+            checkpointer.save(len(records), state, records)
         raise
-    simulation_s = time.perf_counter() - started
-
-    stacked = jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)  # [S, E, ...]
-    if keeping:
-        save_finished(checkpoint_dir, identity, steps, dict(stacked._asdict()),
-                      {"compile_s": compile_s, "simulation_s": simulation_s})
     return _simulation_result(scenario, seeds, steps, t, stacked, compile_s, simulation_s, resumed_from_step)
+
+
+def _stack(records: list[simulation.Observation]) -> simulation.Observation:
+    """The observations of every evaluation, ``[S, E, ...]``."""
+    return jax.tree_util.tree_map(lambda *xs: np.stack(xs, axis=1), *records)
 
 
 def _simulation_result(

@@ -19,6 +19,7 @@ import jax
 import numpy as np
 import pandas as pd
 
+from harness.core import interrupts
 from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
 from harness.core.files import atomic_write_json, atomic_write_parquet, atomic_write_text
@@ -176,15 +177,20 @@ def computed_run(
 
 
 def store_run(computed: ComputedRun, out_dir: str | Path, *, force: bool = False) -> StoredRun:
-    """Write a computed run's folder and index row atomically, then drop its checkpoint."""
-    folder = write_run_folder(
-        out_dir, computed.run_id,
-        scenario_toml=computed.scenario_toml, manifest=computed.manifest,
-        trajectories=computed.trajectories, summary=computed.summary, metrics=computed.metrics,
-        judgement=computed.judgement, replace=force,
-    )
-    append_index_row(out_dir, computed.index_row)
-    discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
+    """Write a computed run's folder and index row atomically, then drop its checkpoint.
+
+    A Ctrl-C waits until all three are done (harness.core.interrupts.uninterrupted): a run
+    folder without its index row, or a stored run with its checkpoint, is never left.
+    """
+    with interrupts.uninterrupted():
+        folder = write_run_folder(
+            out_dir, computed.run_id,
+            scenario_toml=computed.scenario_toml, manifest=computed.manifest,
+            trajectories=computed.trajectories, summary=computed.summary, metrics=computed.metrics,
+            judgement=computed.judgement, replace=force,
+        )
+        append_index_row(out_dir, computed.index_row)
+        discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
     return StoredRun(computed.run_id, folder, False, computed.metrics, computed.manifest, computed.judgement)
 
 
