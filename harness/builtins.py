@@ -20,6 +20,7 @@ import harness.equations.latent  # noqa: F401  theory.limit / theory.bins, the l
 import harness.equations.sources  # noqa: F401  theory.source = "builtin" / "none"
 import harness.equations.user  # noqa: F401  theory.source = "python:..." / "file:..."
 import harness.results.judgement  # noqa: F401  the [agreement] table
+import harness.results.landmarks  # noqa: F401  the [landmarks] table
 import harness.sim.chain  # noqa: F401  run.engine = "chain"
 import harness.sim.optimizers  # noqa: F401  the [sgd] update rules
 import harness.sim.simulation  # noqa: F401  run.engine = "full"
