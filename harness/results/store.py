@@ -26,6 +26,7 @@ from harness.core.files import (
 
 RUN_FILES = ("scenario.toml", "manifest.json", "trajectories.parquet", "summary.parquet", "metrics.parquet")
 INDEX_NAME = "runs.parquet"
+LANDMARKS_NAME = "landmarks.parquet"
 
 
 def is_complete_run(folder: str | Path) -> bool:
@@ -45,11 +46,13 @@ def write_run_folder(
     metrics: pd.DataFrame,
     judgement: dict[str, Any] | None = None,
     replace: bool = False,
+    landmarks: pd.DataFrame | None = None,
 ) -> Path:
     """Write the files of a run and publish the folder ``out_dir/name`` atomically.
 
-    ``judgement.json`` (the verdict, harness.results.judgement) is derived from the trajectories and
-    can be rewritten later, so it is not one of the :data:`RUN_FILES` that make a run complete.
+    ``judgement.json`` (the verdict, harness.results.judgement) and ``landmarks.parquet`` (each
+    seed's landmarks, harness.results.paired_landmarks) are derived from the trajectories and can
+    be rewritten later, so they are not among the :data:`RUN_FILES` that make a run complete.
     """
     final = Path(out_dir) / name
     with staging_folder(out_dir, name) as staging:
@@ -60,6 +63,8 @@ def write_run_folder(
         atomic_write_json(staging / "manifest.json", manifest)
         if judgement is not None:
             atomic_write_json(staging / "judgement.json", judgement)
+        if landmarks is not None:
+            atomic_write_parquet(staging / LANDMARKS_NAME, landmarks)
         publish_folder(staging, final, replace=replace)
     return final
 
