@@ -95,6 +95,7 @@ class RunResult:
             return figures.plot_learning_curve(
                 self.summary, trajectories=self.trajectories[self.trajectories["observable"] == "test_error"],
                 verdict=f"test error: {self._group_verdict('test_error')} · run: {self.verdict}",
+                landmarks=self.judgement.get("landmarks"),
             )
         if kind == "order_parameters":
             return figures.plot_order_parameters(self.summary)

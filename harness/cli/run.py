@@ -58,6 +58,70 @@ def format_judgement(record: dict) -> list[str]:
     return lines
 
 
+def _with_interval(mean, low, high) -> str:
+    """'172 [166, 178]' (a mean with its pointwise interval; '-' where undetermined)."""
+    if mean is None or mean != mean:
+        return "-"
+    if low is None or high is None or low != low:
+        return f"{mean:.3g}"
+    return f"{mean:.3g} [{low:.3g}, {high:.3g}]"
+
+
+def _landmark_difference(row: dict) -> str:
+    if row["diff_mean"] is None:
+        return "-"
+    band = row["band"]
+    return f"{row['diff_mean']:+.2g}" + (f" ± {band:.2g}" if band is not None else "")
+
+
+def _band_factors(rows: list[dict]) -> str:
+    """The band factors c = band / se of the judged landmarks: one number, or their range."""
+    factors = sorted(r["band"] / r["diff_sem"] for r in rows if r["band"] is not None and r["diff_sem"])
+    if not factors:
+        return "-"
+    low, high = _number(factors[0]), _number(factors[-1])
+    return low if low == high else f"{low} to {high}"
+
+
+def format_landmarks(record: dict) -> list[str]:
+    """A run's landmark table (judgement.json's "landmarks", harness.results.paired_landmarks), as terminal lines."""
+    section = record.get("landmarks")
+    if not section:
+        return []
+    rows = [r for r in section["table"] if r["sim_seeds"] or r["theory_seeds"]]
+    table = [
+        ["landmark", "verdict", "simulation", "theory", "theory - sim.", "margin", "seeds", "seeds to settle"],
+        ["", "", "mean [95 % interval]", "mean [95 % interval]", "± band", "", "sim/th", ""],
+    ]
+    for r in rows:
+        settle = _seeds(r["seeds_needed"], r["verdict"]) if r["presence"] not in ("theory only", "simulation only") \
+            else f"found in the {r['presence'].removesuffix(' only')} only"
+        table.append([
+            r["landmark"], r["verdict"].upper() if r["verdict"] == "disagree" else r["verdict"],
+            _with_interval(r["sim_mean"], r["sim_low"], r["sim_high"]),
+            _with_interval(r["theory_mean"], r["theory_low"], r["theory_high"]),
+            _landmark_difference(r), _number(r["margin"], 2), f"{r['sim_seeds']}/{r['theory_seeds']}", settle,
+        ])
+    widths = [max(len(line[c]) for line in table) for c in range(len(table[0]))]
+    lines = ["  " + "  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True)).rstrip() for line in table]
+    verdict = section["verdict"]
+    text = f"  landmark verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
+    if verdict == "inconclusive":
+        needed = section.get("seeds_needed")
+        text += (": no number of seeds would settle it" if needed is None or needed == float("inf")
+                 else f": about {int(needed)} seeds would settle it")
+    lines.append(text)
+    lines.append(
+        f"  (landmarks measured seed by seed on the {section['options']['error']} curve; theory - sim.: paired mean "
+        f"± its {100 * (1 - section['alpha']):.3g} % simultaneous band, c = {_band_factors(rows)} "
+        f"({section['band_method']});\n   margin = {section['margin']:g} x the simulated landmark; "
+        "the landmark verdict does not change the run's, which is the curves')"
+    )
+    if section.get("sampling_warning"):
+        lines.append(f"  warning: {section['sampling_warning']}")
+    return lines
+
+
 def print_run_summary(stored, scenario, *, stream=None) -> None:
     """The closing lines of a run: where it is, its cost, its verdict table and its gaps."""
     from harness.results.comparison import describe_gaps
@@ -82,6 +146,8 @@ def print_run_summary(stored, scenario, *, stream=None) -> None:
     if stored.manifest.get("kind") == "theory" or stored.judgement is None:
         return
     for line in format_judgement(stored.judgement):
+        stream.write(line + "\n")
+    for line in format_landmarks(stored.judgement):
         stream.write(line + "\n")
     for line in describe_gaps(stored.judgement.get("gaps", {})):
         stream.write(f"  {line}\n")

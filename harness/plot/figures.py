@@ -45,9 +45,10 @@ from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.legend_handler import HandlerTuple  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 
-from harness import comparison  # noqa: E402
 from harness.core.errors import InputError  # noqa: E402
 from harness.core.files import atomic_write_bytes, nulls_as_nan  # noqa: E402
+from harness.plot.landmark_marks import draw_landmarks, read_landmarks  # noqa: E402
+from harness.results import comparison  # noqa: E402
 
 # ---------------------------------------------------------------------------------------
 # House style
@@ -337,6 +338,7 @@ def plot_learning_curve(
     divergence_t: float | None = None,
     verdict: str | None = None,
     size: FigureSize = FigureSize(),
+    landmarks: dict | None = None,
 ) -> Figure:
     """Test error against t (log axis) with SEM band and theory; below it, the verdict's residuals.
 
@@ -349,6 +351,8 @@ def plot_learning_curve(
     ``divergence_t`` (metrics.parquet: the first time the band lies wholly outside the
     margin) is marked by a vertical line in the residual panel.
     Non-finite values (a diverged seed can make a mean infinite) are left out of the lines.
+    ``landmarks`` (judgement.json's landmarks section) marks the plateau and the exit times
+    (harness.plot.landmark_marks).
     """
     test = _observable(summary, "test_error")
     if test.empty:
@@ -394,6 +398,7 @@ def plot_learning_curve(
             dashes=THEORY_DASHES,
             label="theory",
         )
+        draw_landmarks(curve_ax, landmarks)
 
         curve_ax.set_xscale("log")
         positive = np.concatenate([mean, theory])
@@ -1066,6 +1071,7 @@ def write_run_figures(run_dir: Path, options: FigureOptions = FigureOptions()) -
             divergence_t=divergence,
             verdict=verdict,
             size=options.size,
+            landmarks=read_landmarks(run_dir),
         )
     except FigureInputError as error:
         raise FigureInputError(f"{run_dir}/{error}") from None

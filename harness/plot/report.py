@@ -547,7 +547,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
 <article id="{_anchor("run", run.run_id)}" class="run">
 <h3>{_e(run.run_id)} {_badge(run.verdict)}</h3>
 <p class="scenario">{scenario_line}</p>
-{diverged_note}{_verdict_html(run.judgement)}{figure_block}{note}
+{diverged_note}{_verdict_html(run.judgement)}{_landmarks_html(run.judgement)}{figure_block}{note}
 {_metrics_table(run.metrics, main_names)}
 {_details(f"metrics of every order parameter ({len(other_names)})", others) if others else ""}
 <div class="columns">
@@ -591,6 +591,40 @@ def _verdict_html(judgement: dict | None) -> str:
     gaps = "".join(f"<li>{_e(line)}</li>" for line in describe_gaps(judgement.get("gaps") or {}))
     return (f'<div class="verdict">{_table(head, rows)}<p class="scenario">{_e(settings)}</p>'
             + (f'<ul class="scenario">{gaps}</ul>' if gaps else "") + "</div>")
+
+
+def _landmarks_html(judgement: dict | None) -> str:
+    """A small table of the run's landmarks (judgement.json's landmarks, harness.results.paired_landmarks)."""
+    section = (judgement or {}).get("landmarks")
+    if not section:
+        return ""
+
+    def interval(row: dict, side: str) -> str:
+        low, high = row.get(f"{side}_low"), row.get(f"{side}_high")
+        bounds = f" [{_fmt(low)}, {_fmt(high)}]" if low is not None and high is not None else ""
+        return _e(_fmt(row.get(f"{side}_mean")) + bounds)
+
+    rows = []
+    for row in section["table"]:
+        if not (row["sim_seeds"] or row["theory_seeds"]):
+            continue
+        band = f" ± {_fmt(row['band'])}" if row.get("band") is not None else ""
+        difference = _e(f"{_fmt(row['diff_mean'])}{band}") if row.get("diff_mean") is not None else "–"
+        rows.append(
+            f'<tr><td class="text">{_e(row["landmark"])}</td><td class="text">{_badge(row["verdict"])}</td>'
+            f"<td>{interval(row, 'sim')}</td><td>{interval(row, 'theory')}</td><td>{difference}</td>"
+            f"<td>{_e(_fmt(row['margin']))}</td><td>{row['sim_seeds']}/{row['theory_seeds']}</td>"
+            f'<td class="text">{_e(row["presence"])}</td></tr>'
+        )
+    head = ('<th class="text">landmark</th><th class="text">verdict</th><th>simulation [95 %]</th>'
+            '<th>theory [95 %]</th><th>theory − sim. ± band</th><th>margin</th><th>seeds sim/th</th>'
+            '<th class="text">found in</th>')
+    note = (f"landmarks of {section['options']['error']}, seed by seed: landmark verdict "
+            f"{section['verdict']}; margin {_fmt(section['margin'])} × the simulated landmark, "
+            f"{_fmt(100 * (1 - section['alpha']))} % simultaneous band ({section['band_method']}); "
+            "it does not change the run's verdict")
+    warning = f'<p class="note">{_e(section["sampling_warning"])}</p>' if section.get("sampling_warning") else ""
+    return f'<div class="verdict">{_table(head, rows)}<p class="scenario">{_e(note)}</p>{warning}</div>'
 
 
 def _short_keys(keys: Sequence[str]) -> dict[str, str]:

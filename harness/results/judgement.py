@@ -76,7 +76,8 @@ finite-size offset well inside the margin is information, not a failure.
 Scalars (landmarks). The same rule judges quantities that are one number per seed, such as the
 plateau's exit time (harness.results.paired_landmarks): d_s(l) = theory_s(l) - sim_s(l) over
 the seeds where both sides have quantity l, one cell per quantity (E = 1), the band factor c
-over the judged quantities as above, and a margin relative to each quantity's own simulated
+over the judged quantities as above (below the bootstrap's seeds each quantity's Sidak factor
+uses its own seeds: the counts differ from quantity to quantity), and a margin relative to each quantity's own simulated
 size, delta_l = margin * |mean_s sim_s(l)| (mean over the same seeds). The quantities' outcomes
 combine into one as the groups' do (:func:`combine_verdicts`).
 
@@ -502,7 +503,13 @@ def judge_scalars(diff: np.ndarray, size: np.ndarray, names: Sequence[str], marg
     delta = margin.margin * np.abs(size)
     judged = (n >= 2) & np.isfinite(mean) & np.isfinite(delta) & (delta > 0)
     band = band_factor(diff[:, None, :], sem[None, :], n[None, :], judged, margin.alpha)
-    half_width = np.where(judged, band.factor * np.where(sem > 0, sem, 0.0), np.nan)
+    # Below the bootstrap's seeds each quantity's Sidak factor takes its own degrees of freedom:
+    # the quantities' seeds differ (a decay rate measured in 4 seeds, an exit time in 60), and the
+    # Sidak inequality holds cell by cell, so one quantity's few seeds need not widen every band.
+    bands = [band._replace(factor=max(_sidak_factor(margin.alpha, band.cells, int(n[i])),
+                                      _pointwise_factor(margin.alpha, int(n[i]))), seeds=int(n[i]))
+             if band.method == "sidak" and judged[i] else band for i in range(len(names))]
+    half_width = np.where(judged, np.array([b.factor for b in bands]) * np.where(sem > 0, sem, 0.0), np.nan)
     items = []
     for i, name in enumerate(names):
         if not judged[i]:
@@ -511,7 +518,7 @@ def judge_scalars(diff: np.ndarray, size: np.ndarray, names: Sequence[str], marg
             continue
         verdict = _outcome(mean[i : i + 1], half_width[i : i + 1], delta[i : i + 1])
         # each quantity's own seeds (they differ from landmark to landmark), not the band's fewest
-        needed = _seeds_needed(mean[i : i + 1], sem[i : i + 1], delta[i : i + 1], band, int(n[i])) \
+        needed = _seeds_needed(mean[i : i + 1], sem[i : i + 1], delta[i : i + 1], bands[i], int(n[i])) \
             if verdict == INCONCLUSIVE else math.nan
         items.append(ScalarVerdict(
             name, verdict, float(mean[i]), float(sem[i]), int(n[i]), float(delta[i]), float(half_width[i]),
