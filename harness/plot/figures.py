@@ -648,6 +648,8 @@ SCALING_KEYS = (
 def read_scaling(folder: Path) -> dict:
     path = Path(folder) / "verdict.json"
     content = nulls_as_nan(read_json(path))  # strict JSON writes a non-finite number as null
+    if content.get("kind") == "landmark":  # a landmark across sizes (harness.plot.landmark_growth)
+        return content
     missing = [key for key in SCALING_KEYS if key not in content]
     if missing:
         raise FigureInputError(f"{path}: missing key(s) {', '.join(missing)}")
@@ -713,6 +715,10 @@ def _exponent_text(verdict: dict) -> str:
 
 def plot_scaling(verdict: dict, *, size: FigureSize = FigureSize()) -> Figure:
     """Gap against N (log-log) with the fitted law a N^-b + c, the offset band and the verdict."""
+    if verdict.get("kind") == "landmark":  # a landmark across sizes, not a gap
+        from harness.plot.landmark_growth import plot_landmark_scaling
+
+        return plot_landmark_scaling(verdict, size=size)
     sizes = np.asarray(verdict["sizes"], dtype=float)
     gaps = np.asarray(verdict["gaps"], dtype=float)
     errors = np.asarray(verdict["gap_errs"], dtype=float)

@@ -684,6 +684,9 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
     for entry in entries:
         v = entry.verdict
         name = os.path.relpath(entry.path, root)
+        if v.get("kind") == "landmark":
+            parts.append(_landmark_scaling_html(entry, root))
+            continue
         rows = [
             ("exponent b", _pm_html(v["exponent"], v["exponent_err"])),
             ("offset c", _pm_html(v["offset"], v["offset_err"])),
@@ -703,6 +706,45 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
 </article>"""
         )
     return "".join(parts)
+
+
+def _landmark_scaling_html(entry: ScalingEntry, root: Path) -> str:
+    """A landmark across sizes (harness.studies.landmark_scaling): the table per size and the growth."""
+    v = entry.verdict
+    name = os.path.relpath(entry.path, root)
+
+    def interval(side: str, i: int) -> str:
+        return _e(f"{_fmt(v[f'{side}_means'][i])} [{_fmt(v[f'{side}_lows'][i])}, {_fmt(v[f'{side}_highs'][i])}]")
+
+    rows = []
+    for i, size in enumerate(v["sizes"]):
+        item = v["items"][i]
+        rows.append(
+            f"<tr><td>{_e(_fmt(size))}</td><td>{interval('sim', i)}</td><td>{interval('theory', i)}</td>"
+            f"<td>{_e(_fmt(item['mean']))} ± {_e(_fmt(item['half_width']))}</td><td>{_e(_fmt(item['delta']))}</td>"
+            f'<td class="text">{_e(v["presence"][i])}</td><td class="text">{_badge(item["verdict"])}</td></tr>'
+        )
+    growth = v["growth"]
+    rows.append(
+        f'<tr><td class="text">growth per e-fold of N</td><td></td><td></td>'
+        f"<td>{_e(_fmt(growth['difference']))} ± {_e(_fmt(growth['band']))}</td><td>{_e(_fmt(growth['margin']))}</td>"
+        f'<td></td><td class="text">{_badge(growth["verdict"])}</td></tr>'
+    )
+    head = ("<th>N</th><th>simulation [95 %]</th><th>theory [95 %]</th><th>theory − sim. ± band</th><th>margin</th>"
+            '<th class="text">found in</th><th class="text">verdict</th>')
+    laws = "; ".join(
+        f"{side}: {law['law']} with " + ", ".join(f"{k} = {_fmt(val)}" for k, val in law["params"].items())
+        for side, fits in (v.get("fits") or {}).items() for law in fits.values()
+    )
+    explanation = "".join(f" · {_e(v[key])}" for key in ("reason", "advice") if v.get(key))
+    note = f'<p class="note">{_e(entry.figure_note)}</p>' if entry.figure_note else ""
+    return f"""<article id="{_anchor("scaling", name)}">
+<h3>{_e(name)} {_badge(str(v["verdict"]))}</h3>
+<p class="scenario">{_e(v["landmark"])} across sizes: theory against simulation at each N and in its growth\
+{explanation}</p>
+{_table(head, rows)}<p class="scenario">{_e(laws)}</p>
+{_figure_html(entry.figure_files, root, {"scaling": "the landmark against N with its fitted growth"})}{note}
+</article>"""
 
 
 def _sweep_section(entries: Sequence[SweepEntry], root: Path, run_ids: set[str]) -> str:

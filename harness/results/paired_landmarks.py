@@ -185,7 +185,7 @@ def _as_array(found: Landmarks, names: Sequence[str]) -> np.ndarray:
     return np.stack([np.asarray(getattr(found, name), np.float64) for name in names], axis=1)
 
 
-def _presence(sim: np.ndarray, theory: np.ndarray, has_sim: np.ndarray, has_theory: np.ndarray,
+def presence(sim: np.ndarray, theory: np.ndarray, has_sim: np.ndarray, has_theory: np.ndarray,
               alpha: float) -> str:
     """Which sides have the landmark (finite in ``sim`` / ``theory`` [S]) in most seeds (module docstring)."""
     sim_seeds, theory_seeds = int(has_sim.sum()), int(has_theory.sum())
@@ -239,8 +239,8 @@ def pair_landmarks(
 
     sim_count = np.isfinite(sim).sum(axis=0)
     theory_count = np.isfinite(theory).sum(axis=0)
-    presence = [_presence(sim[:, i], theory[:, i], has_sim, has_theory, margin.alpha) for i in range(len(names))]
-    mismatched = [p in (THEORY_ONLY, SIMULATION_ONLY) for p in presence]
+    presences = [presence(sim[:, i], theory[:, i], has_sim, has_theory, margin.alpha) for i in range(len(names))]
+    mismatched = [p in (THEORY_ONLY, SIMULATION_ONLY) for p in presences]
     judged_columns = [i for i, name in enumerate(names) if name in options.judged and not mismatched[i]]
     diff = theory[:, judged_columns] - sim[:, judged_columns]
     paired = np.isfinite(diff)
@@ -266,7 +266,7 @@ def pair_landmarks(
         sim_stats = pointwise_interval(sim[:, i], margin.alpha)
         theory_stats = pointwise_interval(theory[:, i], margin.alpha)
         rows.append(LandmarkRow(
-            landmark=name, verdict=item.verdict, presence=presence[i], judged=name in options.judged,
+            landmark=name, verdict=item.verdict, presence=presences[i], judged=name in options.judged,
             seeds=len(traj.seeds), sim_seeds=int(sim_count[i]), theory_seeds=int(theory_count[i]),
             paired_seeds=paired_seeds, sim_mean=sim_stats[0], sim_low=sim_stats[2], sim_high=sim_stats[3],
             theory_mean=theory_stats[0], theory_low=theory_stats[2], theory_high=theory_stats[3],

@@ -146,8 +146,15 @@ import numpy as np
 
 from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
-from harness.results.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED
+from harness.results.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED, Margin
 from harness.results.judgement import EXIT_STATUS as VERDICT_EXIT_STATUS
+from harness.studies.landmark_scaling import (
+    LANDMARK_PREFIX,
+    check_observable,
+    format_landmark_verdict,
+    landmark_name,
+    landmark_scaling,
+)
 
 DEFAULT_OBSERVABLE = "test_error"
 DEFAULT_RESOLUTION = 0.05
@@ -833,8 +840,10 @@ def validate(
     names = observable_names(
         scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
-    if observable not in names:
-        raise InputError(f"--observable: must be one of {', '.join(names)}; got {observable!r}")
+    if observable.startswith(LANDMARK_PREFIX):
+        check_observable(observable)
+    elif observable not in names:
+        raise InputError(f"--observable: must be one of {', '.join(names)}, or landmark:NAME; got {observable!r}")
     return [scenario_lib.with_overrides(scenario, {"data.input_dim": n}) for n in sizes]
 
 
@@ -1000,12 +1009,18 @@ def run_scaling(
     identifier = scale_id(scenario, sizes, observable, resolution, min_exponent)
     out_dir = Path(out_dir)
     runs = run_sizes(per_size, sizes, out_dir, force=force, log=log, show_progress=show_progress)
-    record, columns = gap_scaling(runs, observable, resolution, min_exponent)
+    landmark = landmark_name(observable)
+    if landmark is not None:  # the law of growth of a landmark (harness.studies.landmark_scaling)
+        record, columns = landmark_scaling(runs, landmark, Margin.from_scenario(scenario), min_exponent)
+    else:
+        record, columns = gap_scaling(runs, observable, resolution, min_exponent)
     return record_verdict(out_dir, identifier, scenario, runs, observable, record, columns)
 
 
 def format_verdict(verdict: dict[str, Any]) -> str:
     """The closing lines of ``harness scale``: per-size gaps, the fit and the verdict."""
+    if verdict.get("kind") == "landmark":
+        return format_landmark_verdict(verdict)
     lines = [f"finite-size scaling of {verdict['observable']} -> {verdict['scale_id']}"]
     lines.append(
         f"  {'N':>7}  {'gap':>10}  {'-err':>8}  {'+err':>8}  {'squared gap U':>14}  {'+-':>8}  "
