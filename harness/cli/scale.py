@@ -1,4 +1,7 @@
-"""``harness scale SCENARIO --sizes ...``: does the gap between theory and simulation vanish as N grows?"""
+"""``harness scale SCENARIO --sizes ...``: does the gap between theory and simulation vanish as N grows?
+
+With ``--observable landmark:NAME``: does the theory's landmark follow the simulation's as N grows?
+"""
 
 from __future__ import annotations
 
@@ -38,7 +41,9 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
         description=(
             "Runs SCENARIO at each input size (data.input_dim; each size is an ordinary stored run, reused "
             "when complete), measures the gap between theory and simulation at each size, fits "
-            "gap(N) = a N^-b + c and writes DIR/<scale_id>/verdict.json. Exit status: 0 consistent, "
+            "gap(N) = a N^-b + c and writes DIR/<scale_id>/verdict.json. With --observable landmark:NAME it "
+            "judges the landmark's theory against its simulation at every size and in its growth per e-fold "
+            "of N, and fits a + b ln N and a N^-b + c to each side. Exit status: 0 consistent, "
             "1 inconsistent, 3 inconclusive, 2 bad input."
         ),
     )
@@ -48,7 +53,8 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
     scale.add_argument(
         "--observable", default=DEFAULT_OBSERVABLE,
         help=f"observable whose gap is measured (default: {DEFAULT_OBSERVABLE}; overlap_error avoids "
-        "the held-out set's noise)",
+        "the held-out set's noise), or landmark:NAME (e.g. landmark:plateau_exit) to judge a landmark at every "
+        "size and its growth with ln N",
     )
     scale.add_argument(
         "--resolution", type=float, default=DEFAULT_RESOLUTION,

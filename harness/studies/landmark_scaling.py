@@ -149,7 +149,7 @@ def fit_power_law(
     with np.errstate(invalid="ignore"):
         spread = np.sqrt(np.diag(covariance)) if np.all(np.isfinite(covariance)) else np.full(3, np.nan)
     a = amplitude * reference**b
-    if not low < b < POWER_EXPONENT_MAX:  # a covariance is meaningless at a bound
+    if not low * (1 + 1e-6) < b < POWER_EXPONENT_MAX * (1 - 1e-6):  # a covariance is meaningless at a bound
         spread = np.array([np.nan, np.nan, spread[2]])
     # a = A N_ref^b: its error from A's alone (b's share is left out: the errors describe, not judge)
     return LawFit("a N^-b + c", {"a": a, "b": b, "c": c},
