@@ -217,7 +217,9 @@ def scale(scenario: ScenarioLike, sizes: Sequence[int], out: str | Path = "resul
         scenario: as for :func:`run`.
         sizes: the input sizes N (at least three).
         out: results folder.
-        **options: ``observable``, ``resolution``, ``min_exponent``, ``force`` (harness.studies.scaling).
+        **options: ``observable`` (an observable's gap, or ``"landmark:plateau_exit"`` for a landmark's
+            growth, harness.studies.landmark_scaling), ``resolution``, ``min_exponent``, ``force``
+            (harness.studies.scaling).
 
     Returns:
         The verdict record that ``verdict.json`` holds ("consistent" / "inconsistent" / "inconclusive").

@@ -59,7 +59,7 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
     scale.add_argument(
         "--resolution", type=float, default=DEFAULT_RESOLUTION,
         help="smallest offset worth detecting, relative to the observable's rms over time "
-        f"(default: {DEFAULT_RESOLUTION:g})",
+        f"(default: {DEFAULT_RESOLUTION:g}; a landmark is judged with the scenario's [agreement] margin instead)",
     )
     scale.add_argument(
         "--min-exponent", type=float, default=EXPONENT_BOUNDS[0],
