@@ -3,7 +3,9 @@
 ``harness scale SCENARIO --sizes 250,500,1000,2000`` runs the scenario at each input size
 N (everything else equal; each size is an ordinary stored run, reused when complete),
 measures a gap between simulation and theory at each N, fits gap(N) = a N^-b + c and
-decides whether the offset c (the gap left at N -> infinity) is zero.
+decides whether the offset c (the gap left at N -> infinity) is zero. With ``--observable
+landmark:NAME`` the question is a landmark's law of growth instead (the escape time growing like
+ln N), answered by harness.studies.landmark_scaling on the same stored runs.
 
 The gap and why it is built this way
 ------------------------------------
