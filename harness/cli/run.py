@@ -7,6 +7,8 @@ import sys
 from pathlib import Path
 
 DEFAULT_OUT = Path("results")
+PRACTICAL_SEED_FACTOR = 50
+"""More than this many times the seeds run is called beyond practical reach."""
 
 
 def _load_scenario(path: str | None):
@@ -43,8 +45,14 @@ def format_judgement(record: dict) -> list[str]:
     text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
     if verdict == "inconclusive":
         needed = record.get("seeds_needed")
-        text += (": no number of seeds would settle it at this margin" if needed is None or needed == float("inf")
-                 else f": about {int(needed)} seeds would settle it (an estimate from the measured spread)")
+        seeds = record.get("band_seeds") or 0
+        if needed is None or needed == float("inf"):
+            text += ": no number of seeds would settle it at this margin"
+        elif seeds and needed > PRACTICAL_SEED_FACTOR * seeds:
+            text += (f": about {int(needed)} seeds would settle it, beyond practical reach at this margin "
+                     "(a wider [agreement] margin is the realistic change)")
+        else:
+            text += f": about {int(needed)} seeds would settle it (an estimate from the measured spread)"
     lines.append(text)
     band = f"c = {_number(record['band_factor'])}, {record['band_method']}"
     if record.get("band_cells"):
