@@ -45,7 +45,7 @@ from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.legend_handler import HandlerTuple  # noqa: E402
 from matplotlib.lines import Line2D  # noqa: E402
 
-from harness import comparison  # noqa: E402
+from harness.results import comparison  # noqa: E402
 from harness.core.errors import InputError  # noqa: E402
 from harness.core.files import atomic_write_bytes, nulls_as_nan  # noqa: E402
 
