@@ -26,6 +26,8 @@ from harness.core.files import (
 
 RUN_FILES = ("scenario.toml", "manifest.json", "trajectories.parquet", "summary.parquet", "metrics.parquet")
 INDEX_NAME = "runs.parquet"
+KEPT_ON_REPLACE = ("figures",)
+"""What a run folder keeps when ``--force`` replaces its run (write_run_folder)."""
 
 
 def is_complete_run(folder: str | Path) -> bool:
@@ -50,6 +52,10 @@ def write_run_folder(
 
     ``judgement.json`` (the verdict, harness.results.judgement) is derived from the trajectories and
     can be rewritten later, so it is not one of the :data:`RUN_FILES` that make a run complete.
+    With ``replace`` the folder of an earlier run of the same name is replaced, except for its
+    ``figures/`` (:data:`KEPT_ON_REPLACE`): drawn by the user, perhaps at a chosen size, they
+    are kept; being older than the new tables, they count as stale and ``harness report``
+    redraws them (harness.plot.report).
     """
     final = Path(out_dir) / name
     with staging_folder(out_dir, name) as staging:
@@ -60,7 +66,7 @@ def write_run_folder(
         atomic_write_json(staging / "manifest.json", manifest)
         if judgement is not None:
             atomic_write_json(staging / "judgement.json", judgement)
-        publish_folder(staging, final, replace=replace)
+        publish_folder(staging, final, replace=replace, keep=KEPT_ON_REPLACE)
     return final
 
 
