@@ -74,6 +74,7 @@ def write_run_folder(
     t_max: float = 200.0,
     rng_seed: int = 0,
     theory_only: bool = False,
+    replace: bool = False,
 ) -> Path:
     """Write one run folder ``root/run_id`` of synthetic trajectories and return its path.
 
@@ -86,6 +87,7 @@ def write_run_folder(
     ``gaussian_equivalence_gap`` shifts the measured test error away from the overlap error
     (what a failing Gaussian equivalence looks like).
     ``theory_only`` makes the run of ``harness theory``: the simulation columns NaN, kind "theory".
+    ``replace`` replaces a stored run of the same name, as ``--force`` does.
     """
     from harness.core import scenario as scenario_lib
     from harness.core.trajectories import from_frame
@@ -135,7 +137,7 @@ def write_run_folder(
         run_id=run_id, manifest=computed.manifest | {"run_id": run_id},
         index_row=computed.index_row | {"run_id": run_id},
     )
-    return store_run(computed, root).folder
+    return store_run(computed, root, force=replace).folder
 
 
 def write_sweep_of_runs(root: Path, learning_rates: list[float], *, name: str = "sweep_runs", **run_options) -> Path:
