@@ -19,6 +19,7 @@ from pathlib import Path
 import numpy as np
 from matplotlib import rc_context
 from matplotlib.figure import Figure
+from matplotlib.ticker import NullFormatter
 
 from harness.core.files import nulls_as_nan
 from harness.plot.reading import read_json
@@ -196,6 +197,10 @@ def plot_scaling(verdict: dict, *, size: FigureSize = DEFAULT_SIZE) -> Figure:
         else:
             ax.plot([], [], " ", label=offset_label + " (below range)")
         ax.set_ylim(low, high)
+        # Ticks at the sizes measured, in plain numbers (a few sizes within a decade or two
+        # would otherwise be labelled 2 x 10^1, 3 x 10^1, ...).
+        ax.set_xticks(sizes, [_sizes_text(np.array([n])) for n in sizes])
+        ax.xaxis.set_minor_formatter(NullFormatter())
         ax.set_xlabel(r"$N$")
         ax.set_ylabel(gap_label(verdict))
         ax.legend(loc="best")
