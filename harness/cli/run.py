@@ -17,6 +17,24 @@ def _load_scenario(path: str | None):
     return scenario_lib.load(path)
 
 
+def check_out(out: Path) -> None:
+    """The results folder can take the run (harness.core.destinations), checked before any work."""
+    from harness.core.destinations import check_output_folder
+
+    check_output_folder(out, "--out")
+
+
+def announce_replacement(folder: Path, what: str = "run") -> None:
+    """With --force, say on stderr (one line) which stored run is replaced and what happens to its figures."""
+    from harness.results.store import is_complete_run
+
+    if not is_complete_run(folder):
+        return
+    kept = (" (its figures/ are kept, older than the new tables: 'harness report' or 'harness figure' redraws them)"
+            if (folder / "figures").is_dir() else "")
+    sys.stderr.write(f"harness: --force: replacing the stored {what} '{folder}'{kept}\n")
+
+
 def _number(value, digits: int = 3) -> str:
     return "-" if value is None or value != value else f"{value:.{digits}g}"
 
@@ -105,6 +123,11 @@ def verdict_status(stored) -> int:
 
 def _cmd_run(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
+    check_out(args.out)
+    if args.force:
+        from harness.core.scenario import run_id
+
+        announce_replacement(args.out / run_id(scenario))
     from harness.runner.pipeline import run_and_store
     from harness.runner.progress import Progress
 
@@ -121,6 +144,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 def _cmd_theory(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)
+    check_out(args.out)
+    if args.force:
+        from harness.core.scenario import run_id
+
+        announce_replacement(args.out / (run_id(scenario) + "-theory"), "theory run")
     from harness.runner.pipeline import theory_and_store
 
     stored = theory_and_store(scenario, args.out, force=args.force)
