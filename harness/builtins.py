@@ -13,6 +13,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+import harness.core.times  # noqa: F401  the time grid's check (what whole SGD steps can give)
 import harness.data.latent  # noqa: F401  the latent data kinds and their [data] keys
 import harness.data.model  # noqa: F401  data.kind = "gaussian"
 import harness.data.user  # noqa: F401  data.kind = "python:..."

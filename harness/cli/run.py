@@ -7,12 +7,32 @@ import sys
 from pathlib import Path
 
 DEFAULT_OUT = Path("results")
+PRACTICAL_SEED_FACTOR = 50
+"""More than this many times the seeds run is called beyond practical reach."""
 
 
 def _load_scenario(path: str | None):
     from harness.core import scenario as scenario_lib
 
     return scenario_lib.load(path)
+
+
+def check_out(out: Path) -> None:
+    """The results folder can take the run (harness.core.destinations), checked before any work."""
+    from harness.core.destinations import check_output_folder
+
+    check_output_folder(out, "--out")
+
+
+def announce_replacement(folder: Path, what: str = "run") -> None:
+    """With --force, say on stderr (one line) which stored run is replaced and what happens to its figures."""
+    from harness.results.store import is_complete_run
+
+    if not is_complete_run(folder):
+        return
+    kept = (" (its figures/ are kept, older than the new tables: 'harness report' or 'harness figure' redraws them)"
+            if (folder / "figures").is_dir() else "")
+    sys.stderr.write(f"harness: --force: replacing the stored {what} '{folder}'{kept}\n")
 
 
 def _number(value, digits: int = 3) -> str:
@@ -43,8 +63,14 @@ def format_judgement(record: dict) -> list[str]:
     text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
     if verdict == "inconclusive":
         needed = record.get("seeds_needed")
-        text += (": no number of seeds would settle it at this margin" if needed is None or needed == float("inf")
-                 else f": about {int(needed)} seeds would settle it (an estimate from the measured spread)")
+        seeds = record.get("band_seeds") or 0
+        if needed is None or needed == float("inf"):
+            text += ": no number of seeds would settle it at this margin"
+        elif seeds and needed > PRACTICAL_SEED_FACTOR * seeds:
+            text += (f": about {int(needed)} seeds would settle it, beyond practical reach at this margin "
+                     "(a wider [agreement] margin is the realistic change)")
+        else:
+            text += f": about {int(needed)} seeds would settle it (an estimate from the measured spread)"
     lines.append(text)
     band = f"c = {_number(record['band_factor'])}, {record['band_method']}"
     if record.get("band_cells"):
@@ -163,6 +189,11 @@ def verdict_status(stored) -> int:
 
 def _cmd_run(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)  # validate before any heavy import or work
+    check_out(args.out)
+    if args.force:
+        from harness.core.scenario import run_id
+
+        announce_replacement(args.out / run_id(scenario))
     from harness.runner.pipeline import run_and_store
     from harness.runner.progress import Progress
 
@@ -179,6 +210,11 @@ def _cmd_run(args: argparse.Namespace) -> int:
 
 def _cmd_theory(args: argparse.Namespace) -> int:
     scenario = _load_scenario(args.scenario)
+    check_out(args.out)
+    if args.force:
+        from harness.core.scenario import run_id
+
+        announce_replacement(args.out / (run_id(scenario) + "-theory"), "theory run")
     from harness.runner.pipeline import theory_and_store
 
     stored = theory_and_store(scenario, args.out, force=args.force)

@@ -6,9 +6,12 @@ With ``--observable landmark:NAME``: does the theory's landmark follow the simul
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from harness.core import scenario as scenario_lib
+from harness.core.destinations import check_output_folder
+from harness.results.store import is_complete_run
 from harness.studies.scaling import (
     DEFAULT_OBSERVABLE,
     DEFAULT_RESOLUTION,
@@ -24,7 +27,16 @@ from harness.studies.scaling import (
 def _cmd_scale(args: argparse.Namespace) -> int:
     scenario = scenario_lib.load(args.scenario)
     sizes = parse_sizes(args.sizes)
-    validate(scenario, sizes, args.observable, args.resolution, args.min_exponent)  # every check before any work
+    # every check before any work: the sizes and options, then where the results go
+    per_size = validate(scenario, sizes, args.observable, args.resolution, args.min_exponent)
+    check_output_folder(args.out, "--out")
+    if args.force:
+        replaced = [scenario_lib.run_id(s) for s in per_size if is_complete_run(args.out / scenario_lib.run_id(s))]
+        if replaced:
+            sys.stderr.write(
+                f"harness: --force: replacing {len(replaced)} stored run(s) in '{args.out}' ({', '.join(replaced)}); "
+                "their figures/ are kept, older than the new tables: 'harness report' redraws them\n"
+            )
     verdict = run_scaling(
         scenario, sizes, args.out, observable=args.observable, resolution=args.resolution,
         min_exponent=args.min_exponent, force=args.force, show_progress=not args.quiet,

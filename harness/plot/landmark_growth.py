@@ -12,11 +12,20 @@ from __future__ import annotations
 import math
 from typing import Any
 
-import matplotlib.pyplot as plt
 import numpy as np
+from matplotlib import rc_context
 from matplotlib.figure import Figure
 
-from harness.plot import figures
+from harness.plot.style import (
+    DEFAULT_SIZE,
+    HOUSE_RC,
+    INK,
+    SIM_COLOR,
+    THEORY_COLOR,
+    THEORY_DASHES,
+    FigureSize,
+    new_figure,
+)
 
 NUDGE = 1.04
 """Factor in N between the simulation's and the theory's markers."""
@@ -28,18 +37,17 @@ def _law(fits: dict[str, Any], side: str) -> tuple[float, float] | None:
     return (a, b) if a is not None and b is not None and math.isfinite(a) and math.isfinite(b) else None
 
 
-def plot_landmark_scaling(verdict: dict[str, Any], *, size: figures.FigureSize | None = None) -> Figure:
+def plot_landmark_scaling(verdict: dict[str, Any], *, size: FigureSize = DEFAULT_SIZE) -> Figure:
     """Landmark against N for both sides, with the fitted growth laws and the verdict."""
-    size = size or figures.FigureSize()
     sizes = np.asarray(verdict["sizes"], dtype=float)
     name = str(verdict["landmark"])
-    with plt.rc_context(figures.HOUSE_RC):
-        fig, axes = figures._new_figure("scaling", size)
+    with rc_context(HOUSE_RC):
+        fig, axes = new_figure("scaling", size)
         ax = axes[0, 0]
         ax.set_xscale("log")
         dense = np.geomspace(sizes.min() / 1.2, sizes.max() * 1.2, 100)
-        sides = (("sim", "simulation", figures.SIM_COLOR, "o", True, 1.0 / NUDGE),
-                 ("theory", "theory", figures.THEORY_COLOR, "s", False, NUDGE))
+        sides = (("sim", "simulation", SIM_COLOR, "o", True, 1.0 / NUDGE),
+                 ("theory", "theory", THEORY_COLOR, "s", False, NUDGE))
         for side, label, color, marker, filled, nudge in sides:
             mean = np.asarray(verdict[f"{side}_means"], dtype=float)
             low = np.asarray(verdict[f"{side}_lows"], dtype=float)
@@ -50,10 +58,10 @@ def plot_landmark_scaling(verdict: dict[str, Any], *, size: figures.FigureSize |
             law = _law(verdict.get("fits", {}), side)
             if law is not None:
                 ax.plot(dense, law[0] + law[1] * np.log(dense), color=color, linewidth=0.8,
-                        dashes=figures.THEORY_DASHES if side == "theory" else (None, None),
+                        dashes=THEORY_DASHES if side == "theory" else (None, None),
                         label=rf"$a + b \ln N$, $b = {law[1]:.3g}$")
         ax.set_xlabel(r"$N$")
         ax.set_ylabel(name.replace("_", " "))
         ax.legend(loc="best")
-        ax.set_title(f"{name.replace('_', ' ')} across sizes: {verdict['verdict']}", color=figures.INK)
+        ax.set_title(f"{name.replace('_', ' ')} across sizes: {verdict['verdict']}", color=INK)
     return fig

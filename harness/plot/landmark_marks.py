@@ -13,15 +13,16 @@ The marks come from the landmarks section of a run's judgement.json
 
 from __future__ import annotations
 
-import json
 import math
 from pathlib import Path
 from typing import Any
 
 from matplotlib.axes import Axes
 
-SIM_COLOR = "#1d5a85"  # the simulation's and the theory's colours of harness.plot.figures
-THEORY_COLOR = "#d9731a"
+from harness.core.files import nulls_as_nan
+from harness.plot.reading import read_json
+from harness.plot.style import SIM_COLOR, THEORY_COLOR
+
 PLATEAU_COLOR = "#ececec"
 MARK_SHIFT = 1.3
 """The exit marks sit this factor above (simulation) and below (theory) the exit level (a log axis)."""
@@ -32,7 +33,8 @@ def read_landmarks(run_dir: Path) -> dict[str, Any] | None:
     path = Path(run_dir) / "judgement.json"
     if not path.is_file():
         return None
-    return json.loads(path.read_text()).get("landmarks")
+    section = nulls_as_nan(read_json(path)).get("landmarks")
+    return section if isinstance(section, dict) else None
 
 
 def _finite(value: Any) -> bool:

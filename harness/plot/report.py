@@ -40,7 +40,7 @@ VERDICTS = ("agree", "disagree", "inconclusive", "n/a")
 OVERVIEW_KEYS = 6
 SWEEP_PAGE_METRICS = ("final_test_error", "max_abs_z", "divergence_t")
 SWEEP_CAPTIONS = {
-    "final_test_error": "final test error (simulation mean)",
+    "final_test_error": "final test error: simulation mean ± SEM and theory (heat maps: simulation mean)",
     "max_abs_z": "largest |z| of the test error",
     "divergence_t": "time at which the theory departs",
 }
@@ -173,7 +173,7 @@ def read_run(path: Path) -> RunEntry:
     metrics = figures.read_metrics(path)
     final = math.nan
     if (path / "summary.parquet").is_file():
-        test = figures._read_parquet(
+        test = figures.read_parquet_table(
             path / "summary.parquet",
             ("t", "observable", "sim_mean"),
             filters=[("observable", "==", "test_error")],
@@ -440,11 +440,32 @@ def varying_keys(runs: Sequence[RunEntry]) -> list[str]:
     return [key for key in keys if len({json.dumps(run.scenario[key], default=str) for run in runs}) > 1]
 
 
+def png_size(path: Path) -> tuple[int, int] | None:
+    """Width and height in pixels from a PNG's header (its IHDR chunk), or None if it is not a PNG.
+
+    PNG specification (W3C, 2003), sections 5.2-5.3 and 11.2.2: an 8-byte signature, then
+    the IHDR chunk whose data starts with the width and height as 4-byte big-endian integers.
+    """
+    try:
+        with open(path, "rb") as stream:
+            head = stream.read(24)
+    except OSError:
+        return None
+    if len(head) < 24 or head[:8] != b"\x89PNG\r\n\x1a\n" or head[12:16] != b"IHDR":
+        return None
+    return int.from_bytes(head[16:20], "big"), int.from_bytes(head[20:24], "big")
+
+
 def _figure_html(files: dict[str, Path], root: Path, captions: dict[str, str]) -> str:
     items = []
     for name, png in files.items():
         pdf = png.with_suffix(".pdf")
-        image = f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}" loading="lazy">'
+        # width and height let the browser reserve each lazily loaded image's box (its aspect
+        # ratio) before the file arrives, so the page does not shift as images load; the style
+        # sheet still sets the shown width.
+        size = png_size(png)
+        box = f' width="{size[0]}" height="{size[1]}"' if size else ""
+        image = f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}"{box} loading="lazy">'
         if pdf.is_file():
             image = f'<a href="{_href(pdf, root)}" title="vector PDF">{image}</a>'
         items.append(f"<figure>{image}<figcaption>{_e(captions.get(name, name))}</figcaption></figure>")
@@ -677,6 +698,13 @@ def _pm_html(value: object, error: object) -> str:
     return f"({_e(mantissa)} ± {_e(spread)}) × 10<sup>{exponent}</sup>"
 
 
+def _sentences(value: object) -> str:
+    """A verdict.json text field as prose: a list (the scaling advice) joined with semicolons."""
+    if isinstance(value, (list, tuple)):
+        return "; ".join(str(item) for item in value)
+    return str(value)
+
+
 def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
     if not entries:
         return '<p class="empty">No finite-size-scaling results in this folder.</p>'
@@ -696,7 +724,7 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
         table = "".join(f'<tr><td class="text">{_e(k)}</td><td class="text mono">{val}</td></tr>' for k, val in rows)
         note = f'<p class="note">{_e(entry.figure_note)}</p>' if entry.figure_note else ""
         # verdict.json from `harness scale` also says why and what to do next; show it when present.
-        explanation = "".join(f" · {_e(v[key])}" for key in ("reason", "advice") if v.get(key))
+        explanation = "".join(f" · {_e(_sentences(v[key]))}" for key in ("reason", "advice") if v.get(key))
         parts.append(
             f"""<article id="{_anchor("scaling", name)}">
 <h3>{_e(name)} {_badge(str(v["verdict"]))}</h3>
