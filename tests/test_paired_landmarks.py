@@ -143,7 +143,6 @@ def test_the_default_scenario_escapes_when_the_theory_says(tmp_path, capsys):
                                       landmarks=stored.judgement["landmarks"])
     labels = [text.get_text() for text in fig.axes[0].get_legend().get_texts()]
     assert "plateau, sim." in labels and any("exit" in label and "theory" in label for label in labels)
-    figures.plt.close(fig)
 
 
 def test_a_landmark_scales_through_the_command(tmp_path, capsys):
