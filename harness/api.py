@@ -95,6 +95,7 @@ class RunResult:
             return figures.plot_learning_curve(
                 self.summary, trajectories=self.trajectories[self.trajectories["observable"] == "test_error"],
                 verdict=f"test error: {self._group_verdict('test_error')} · run: {self.verdict}",
+                landmarks=self.judgement.get("landmarks"),
             )
         if kind == "order_parameters":
             return figures.plot_order_parameters(self.summary)
@@ -216,7 +217,9 @@ def scale(scenario: ScenarioLike, sizes: Sequence[int], out: str | Path = "resul
         scenario: as for :func:`run`.
         sizes: the input sizes N (at least three).
         out: results folder.
-        **options: ``observable``, ``resolution``, ``min_exponent``, ``force`` (harness.studies.scaling).
+        **options: ``observable`` (an observable's gap, or ``"landmark:plateau_exit"`` for a landmark's
+            growth, harness.studies.landmark_scaling), ``resolution``, ``min_exponent``, ``force``
+            (harness.studies.scaling).
 
     Returns:
         The verdict record that ``verdict.json`` holds ("consistent" / "inconsistent" / "inconclusive").

@@ -13,6 +13,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+import harness.core.times  # noqa: F401  the time grid's check (what whole SGD steps can give)
 import harness.data.latent  # noqa: F401  the latent data kinds and their [data] keys
 import harness.data.model  # noqa: F401  data.kind = "gaussian"
 import harness.data.user  # noqa: F401  data.kind = "python:..."
@@ -20,6 +21,7 @@ import harness.equations.latent  # noqa: F401  theory.limit / theory.bins, the l
 import harness.equations.sources  # noqa: F401  theory.source = "builtin" / "none"
 import harness.equations.user  # noqa: F401  theory.source = "python:..." / "file:..."
 import harness.results.judgement  # noqa: F401  the [agreement] table
+import harness.results.landmarks  # noqa: F401  the [landmarks] table
 import harness.sim.chain  # noqa: F401  run.engine = "chain"
 import harness.sim.optimizers  # noqa: F401  the [sgd] update rules
 import harness.sim.simulation  # noqa: F401  run.engine = "full"

@@ -73,6 +73,8 @@ def write_run_folder(
     times: int = 40,
     t_max: float = 200.0,
     rng_seed: int = 0,
+    theory_only: bool = False,
+    replace: bool = False,
 ) -> Path:
     """Write one run folder ``root/run_id`` of synthetic trajectories and return its path.
 
@@ -84,6 +86,8 @@ def write_run_folder(
     from 0 to 1 after t ~ 20, so a nonzero bias makes the theory depart from simulation.
     ``gaussian_equivalence_gap`` shifts the measured test error away from the overlap error
     (what a failing Gaussian equivalence looks like).
+    ``theory_only`` makes the run of ``harness theory``: the simulation columns NaN, kind "theory".
+    ``replace`` replaces a stored run of the same name, as ``--force`` does.
     """
     from harness.core import scenario as scenario_lib
     from harness.core.trajectories import from_frame
@@ -113,7 +117,9 @@ def write_run_folder(
             rows.append(pd.DataFrame({"seed": seed, "t": grid, "observable": name, "sim": sim, "theory": theory}))
     frame = pd.concat(rows, ignore_index=True)
     frame["seed"] = frame["seed"].astype("int64")
-    traj = from_frame(frame)
+    if theory_only:
+        frame["sim"] = np.nan
+    traj = from_frame(frame, paired=not theory_only)
 
     scenario = scenario_lib.resolve({
         "data": {"kind": "gaussian", "input_dim": input_dim},
@@ -125,12 +131,29 @@ def write_run_folder(
     computed = computed_run(
         scenario, traj, started=datetime.datetime(2024, 1, 1, tzinfo=datetime.UTC),
         timings={"simulation_s": 1.5, "theory_s": 0.7, "compile_s": 2.0, "theory_compile_s": 0.4},
+        kind="theory" if theory_only else "run",
     )
     computed = computed._replace(
         run_id=run_id, manifest=computed.manifest | {"run_id": run_id},
         index_row=computed.index_row | {"run_id": run_id},
     )
-    return store_run(computed, root).folder
+    return store_run(computed, root, force=replace).folder
+
+
+def write_sweep_of_runs(root: Path, learning_rates: list[float], *, name: str = "sweep_runs", **run_options) -> Path:
+    """A sweep folder over ``sgd.learning_rate`` whose points are run folders of :func:`write_run_folder`.
+
+    runs.parquet holds the rows the tool's own writer made for those runs (final values of
+    simulation and theory, verdicts), as a real sweep's does; sweep.json names them.
+    """
+    folder = root / name
+    run_ids = []
+    for index, rate in enumerate(learning_rates):
+        run_id = f"{name}-{index:03d}"
+        write_run_folder(folder, run_id, learning_rate=rate, rng_seed=index, **run_options)
+        run_ids.append(run_id)
+    (folder / "sweep.json").write_text(json.dumps({"swept_keys": ["sgd.learning_rate"], "run_ids": run_ids}))
+    return folder
 
 
 def write_scaling_folder(root: Path, name: str = "scaling_erf", *, offset: float = 0.0) -> Path:
@@ -180,6 +203,8 @@ def write_sweep_folder(
         row.update(values)
         row["data.input_dim"] = 100
         row["final_test_error"] = 0.01 * width / (1.0 + eta)
+        row["final_test_error_sem"] = 0.001 * width
+        row["final_theory_error"] = row["final_test_error"] * (1.0 + 0.2 * (eta > 1.0))
         row["test_error.max_abs_z"] = 0.8 + eta**2 * 0.6
         row["test_error.final_rel_err"] = 0.002 * eta * width
         row["test_error.divergence_t"] = 50.0 / eta if eta > 1.0 else float("nan")

@@ -51,6 +51,9 @@ def test_harness_check_passes_on_the_committed_baselines(capsys):
     count = len([p for p in COMMITTED.iterdir() if p.is_dir()])
     assert status == 0, printed
     assert f"{count} of {count} baseline(s) match" in printed
+    # No false alarm: today's draws of the float32 weights are the stored ones to within a
+    # couple of float32 ulps, which used to be reported as "initial conditions ... differ".
+    assert "note:" not in printed, printed
 
 
 # ------------------------------------------------------------------ tolerances, compare
@@ -124,6 +127,56 @@ def test_a_changed_equation_fails_the_check(saved, tmp_path, capsys, monkeypatch
     assert "FAILED  tiny" in printed
     failing = [line for line in printed.splitlines() if line.endswith("FAIL")]
     assert any(" Q[0,0] " in line for line in failing) and any(" test_error " in line for line in failing)
+
+
+def _leaf_index(name: str) -> int:
+    """Position of an InitialState field among the stored leaves (initial_state.npz, leaf_<i>)."""
+    import jax
+
+    from harness.equations.iid import OrderParameters
+    from harness.equations.sources import InitialState
+
+    labelled = InitialState("seeds", OrderParameters("Q", "R", "T", "v"), "teacher_v", "teacher_w", "student_w", None)
+    return jax.tree_util.tree_leaves(labelled).index(name)
+
+
+def _with_leaf(baseline, name: str, value) -> baselines.Baseline:
+    leaves = [np.array(leaf) for leaf in baseline.start_leaves]
+    leaves[_leaf_index(name)] = value
+    return baseline._replace(start_leaves=leaves)
+
+
+def _stored_as_if_drawn(baseline, student_w) -> baselines.Baseline:
+    """The baseline as if its student weights had been drawn as ``student_w``, Q and R stored to match.
+
+    Q = W W^T / N and R = W W*^T / N for i.i.d. inputs (docs/equations.md, section 1), in numpy.
+    """
+    n = student_w.shape[-1]
+    teacher_w = baseline.start_leaves[_leaf_index("teacher_w")]
+    changed = _with_leaf(baseline, "student_w", student_w)
+    changed = _with_leaf(changed, "Q", np.einsum("skn,sln->skl", student_w, student_w) / n)
+    return _with_leaf(changed, "R", np.einsum("skn,smn->skm", student_w, teacher_w) / n)
+
+
+def test_initial_state_notes_speak_only_of_real_differences(saved):
+    baseline = baselines.read_baseline(saved)
+    assert baselines.check_baseline(baseline).notes == []
+    weights = baseline.start_leaves[_leaf_index("student_w")].astype(np.float32)  # drawn in float32
+
+    def ulps_away(count: int) -> np.ndarray:
+        moved = weights
+        for _ in range(count):
+            moved = np.nextafter(moved, np.float32(np.inf))
+        return moved.astype(np.float64)
+
+    # Stored weights a couple of float32 ulps from today's draw are the same draw: no note.
+    assert baselines.check_baseline(_stored_as_if_drawn(baseline, ulps_away(2))).notes == []
+    (note,) = baselines.check_baseline(_stored_as_if_drawn(baseline, ulps_away(12))).notes
+    assert "random stream changed" in note and "student_w" in note and "float32 ulps" in note
+    # Stored order parameters that today's code does not compute from the stored weights.
+    q = baseline.start_leaves[_leaf_index("Q")]
+    (note,) = baselines.check_baseline(_with_leaf(baseline, "Q", q * (1 + 1e-6))).notes
+    assert "initial-state code changed" in note and "(in Q)" in note
 
 
 def test_pytest_helper_names_where_and_how_much(saved, tmp_path):

@@ -11,7 +11,7 @@ import pytest
 
 from harness.core import scenario as scenario_lib
 from harness.core.trajectories import Trajectories
-from harness.runner.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder
+from harness.runner.checkpoint import FILE_NAME, Checkpointer, checkpoint_folder, discard_checkpoint
 from harness.runner.experiment import simulate
 from harness.runner.pipeline import run_and_store
 
@@ -48,6 +48,7 @@ def test_interrupted_run_resumes_from_its_checkpoint_bit_identically(tmp_path):
     assert stored.manifest["resumed_from_step"] == crash_step
     assert resumed_steps == [int(s) for s in reference.steps[4:]]
     assert not folder.exists()  # stored: the checkpoint is of no more use
+    assert sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(".")) == [".runs.lock"]  # no .checkpoints/
     # Bit-identical, not merely close: same samples, same blocks, same arithmetic.
     table = pd.read_parquet(stored.folder / "trajectories.parquet")
     expected = Trajectories(reference.seeds, reference.t, table["observable"].unique().tolist(),
@@ -62,6 +63,19 @@ def _state():
 
 def _checkpointer(folder, *, run_id="abc", steps=(0, 5, 10), key=(1, 2), interval_s=1e-9):
     return Checkpointer(folder, interval_s, run_id, np.array(steps), np.array(key, dtype=np.uint32))
+
+
+def test_discarding_the_last_checkpoint_removes_the_checkpoints_folder(tmp_path):
+    # Two runs in one results folder (a sweep's points): the first stored keeps the other's checkpoint.
+    first, second = checkpoint_folder(tmp_path, "run-a"), checkpoint_folder(tmp_path, "run-b")
+    for folder in (first, second):
+        assert _checkpointer(folder).maybe_save(1, _state(), [{"e": np.array([0.5])}])
+    discard_checkpoint(first)
+    assert not first.exists() and (second / FILE_NAME).is_file()
+    discard_checkpoint(second)
+    assert not (tmp_path / ".checkpoints").exists()
+    discard_checkpoint(second)  # nothing left to discard: no error
+    assert list(tmp_path.iterdir()) == []
 
 
 def test_checkpoint_round_trip_and_atomic_file(tmp_path):

@@ -8,12 +8,17 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
+import subprocess
+import sys
+import warnings
+from pathlib import Path
 
 import matplotlib.pyplot as plt
 import numpy as np
 import pandas as pd
 import pytest
-from conftest_figures import write_run_folder, write_scaling_folder, write_sweep_folder
+from conftest_figures import write_run_folder, write_scaling_folder, write_sweep_folder, write_sweep_of_runs
 from matplotlib.collections import LineCollection
 from matplotlib.image import AxesImage
 from matplotlib.lines import Line2D
@@ -154,27 +159,59 @@ def test_order_parameter_entries_keep_one_triangle_of_symmetric_families():
 def test_order_parameter_grid_markers_and_lines(tmp_path):
     run = write_run_folder(tmp_path, "run-e", students=3, teachers=2, train_second_layer=True)
     fig = figures.plot_order_parameters(figures.read_summary(run))
-    visible = [ax for ax in fig.axes if ax.get_visible()]
-    assert [ax.get_ylabel() for ax in visible] == ["$Q_{ij}$", "$R_{in}$", "$T_{nm}$", "$v_i$"]
-    expected_entries = {"$Q_{ij}$": 6, "$R_{in}$": 6, "$T_{nm}$": 3, "$v_i$": 3}
-    for ax in visible:
+    # A panel for each family that changes; T (the fixed teacher's own overlaps) is constant in the
+    # stored tables and is named in the note instead. No panel is left empty.
+    assert all(ax.get_visible() for ax in fig.axes)
+    assert [ax.get_ylabel() for ax in fig.axes] == ["$Q_{ij}$", "$R_{in}$", "$v_i$"]
+    assert "$T_{nm}$ constant" in fig.get_suptitle()
+    expected_entries = {"$Q_{ij}$": 6, "$R_{in}$": 6, "$v_i$": 3}
+    for ax in fig.axes:
         entries = expected_entries[ax.get_ylabel()]
         assert ax.get_xscale() == "log"
         assert len(_plain_lines(ax)) == entries  # one theory line per entry
         assert len(ax.containers) == entries  # one error-bar set per entry
         assert all(isinstance(c[2][0], LineCollection) for c in ax.containers)
         assert len(ax.get_legend().get_texts()) == entries
-    assert visible[-1].get_xlabel() == r"$t = \mathrm{steps}/N$"
+    assert fig.axes[-1].get_xlabel() == r"$t = \mathrm{steps}/N$"
 
 
 def test_order_parameter_panels_without_v_and_with_many_entries(tmp_path):
     run = write_run_folder(tmp_path, "run-f", students=4, teachers=3)
     fig = figures.plot_order_parameters(figures.read_summary(run), max_legend=8)
-    visible = [ax for ax in fig.axes if ax.get_visible()]
-    assert [ax.get_ylabel() for ax in visible] == ["$Q_{ij}$", "$R_{in}$", "$T_{nm}$"]
+    assert [ax.get_ylabel() for ax in fig.axes] == ["$Q_{ij}$", "$R_{in}$"]
     # Q has 10 and R 12 entries: drawn without a per-entry legend.
-    assert visible[0].get_legend() is None and visible[1].get_legend() is None
-    assert len(_plain_lines(visible[1])) == 12
+    assert fig.axes[0].get_legend() is None and fig.axes[1].get_legend() is None
+    assert len(_plain_lines(fig.axes[1])) == 12
+
+
+def test_a_moving_teacher_overlap_keeps_its_panel(tmp_path):
+    # T gets a panel as soon as it changes in time (here, made to drift), in a 2 x 2 grid of four.
+    run = write_run_folder(tmp_path, "run-t", train_second_layer=True)
+    summary = figures.read_summary(run)
+    drifting = summary["observable"].str.startswith("T[")
+    summary.loc[drifting, "theory_mean"] *= 1.0 + 0.01 * summary.loc[drifting, "t"]
+    fig = figures.plot_order_parameters(summary)
+    assert [ax.get_ylabel() for ax in fig.axes] == ["$Q_{ij}$", "$R_{in}$", "$T_{nm}$", "$v_i$"]
+    assert "constant" not in fig.get_suptitle()
+
+
+def test_theory_only_run_shows_theory_alone(tmp_path):
+    run = write_run_folder(tmp_path, "run-theory", theory_only=True)
+    summary = figures.read_summary(run)
+    assert figures.is_theory_only(summary)
+    trajectories = figures.read_trajectories(run, ["test_error"])
+    fig = figures.plot_learning_curve(summary, trajectories=trajectories, seeds_shown=2)
+    (ax,) = fig.axes  # no residual panel: there is no simulation to take the difference from
+    labels = [text.get_text() for text in ax.get_legend().get_texts()]
+    assert labels == ["one seed's theory", "theory (mean over seeds)"]
+    assert not any("simulation" in label for label in labels)
+    assert ax.get_xlabel() == r"$t = \mathrm{steps}/N$" and ax.get_yscale() == "log"
+    test = summary[(summary["observable"] == "test_error") & (summary["t"] > 0)].sort_values("t")
+    np.testing.assert_allclose(ax.lines[-1].get_ydata(), test["theory_mean"].to_numpy())
+    order = figures.plot_order_parameters(summary)
+    assert not any(ax.containers for ax in order.axes)  # no simulation markers
+    assert "simulation" in order.get_suptitle()  # ... which the key says: "no simulation in this run"
+    assert "markers" not in order.get_suptitle()
 
 
 # ---------------------------------------------------------------------------------------
@@ -201,11 +238,36 @@ def test_scaling_plot_is_log_log_with_fitted_law_and_verdict(tmp_path):
     assert len(ax.containers) == 1 and len(ax.containers[0][0].get_xdata()) == len(verdict["sizes"])
 
 
+@pytest.mark.parametrize("gaps", [[0.0] * 6, [0.0, 0.0, 0.02, 0.0, 0.01, 0.0]])
+def test_scaling_without_positive_gaps_uses_a_linear_axis_and_says_why(tmp_path, gaps, caplog):
+    # The reported gap is sqrt(max(U, 0)): 0 wherever no gap shows beyond the noise
+    # (harness.studies.scaling). A log axis cannot show those points; matplotlib used to warn
+    # "Data has no positive values" on the terminal and draw an empty axis.
+    folder = write_scaling_folder(tmp_path)
+    verdict = json.loads((folder / "verdict.json").read_text())
+    verdict.update(gaps=gaps, gap_errs=[0.004] * 6, amplitude=0.0, offset=0.0)
+    (folder / "verdict.json").write_text(json.dumps(verdict))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # any warning fails the test
+        fig = figures.plot_scaling(figures.read_scaling(folder))
+        figures.save_figure(fig, tmp_path / "scaling", ["png", "pdf"])  # drawing happens here
+    assert not [record for record in caplog.records if record.name.startswith("matplotlib")]
+    ax = fig.axes[0]
+    assert ax.get_yscale() == "linear" and ax.get_xscale() == "log"
+    note = fig.get_suptitle()
+    assert "linear gap axis" in note and "cannot show a gap of 0" in note
+    assert ("at any N" in note) if max(gaps) == 0 else ("at N = 50, 100, 400, 1600" in note)
+    (points,) = [line for line in ax.lines if line.get_marker() == "o"]
+    np.testing.assert_allclose(points.get_ydata(), gaps)  # every size is drawn, zeros included
+    low, high = ax.get_ylim()
+    assert low <= 0.0 < max(gaps) + 0.004 <= high
+
+
 def test_scaling_gap_label_names_the_observable():
     base = {"gap_label": "gap of test_error (rms over t of theory - simulation)"}
-    assert figures._gap_label({**base, "observable": "test_error"}) == r"gap of $\varepsilon_g$"
-    assert figures._gap_label({**base, "observable": "R[1,0]"}) == "gap of $R_{1,0}$"
-    assert figures._gap_label(base) == "gap"  # too long for an axis at column width
+    assert figures.gap_label({**base, "observable": "test_error"}) == r"gap of $\varepsilon_g$"
+    assert figures.gap_label({**base, "observable": "R[1,0]"}) == "gap of $R_{1,0}$"
+    assert figures.gap_label(base) == "gap"  # too long for an axis at column width
 
 
 def test_scaling_folder_missing_key_is_reported(tmp_path):
@@ -247,7 +309,7 @@ def test_sweep_divergence_never_cells_are_masked(tmp_path):
 def test_sweep_curves_over_one_key(tmp_path):
     folder = write_sweep_folder(tmp_path, "sweep_one", swept={"sgd.learning_rate": [0.1, 0.3, 1.0, 3.0, 10.0]})
     keys, runs = figures.read_sweep(folder)
-    ax = figures.plot_sweep(keys, runs, metric="final_test_error").axes[0]
+    ax = figures.plot_sweep(keys, runs, metric="max_abs_z").axes[0]
     assert ax.get_xscale() == "log"  # two decades of learning rates
     curves = [line for line in ax.lines if line.get_linestyle() != "None"]
     assert len(curves) == 1 and len(curves[0].get_xdata()) == 5
@@ -257,12 +319,75 @@ def test_sweep_curves_over_one_key(tmp_path):
     agree = next(line for line in ax.lines if line.get_linestyle() == "None" and len(line.get_xdata())
                  and line.get_marker() == "o" and line.get_markerfacecolor() != "white")
     np.testing.assert_allclose(sorted(agree.get_xdata()), [0.1, 0.3])
-    assert ax.get_ylabel() == r"final $\varepsilon_g$ (simulation)"
+    assert ax.get_ylabel() == r"max $|z|$ of $\varepsilon_g$ (detectability)"
     # One swept key chosen out of two: one curve per value of the other key.
     keys, runs = figures.read_sweep(write_sweep_folder(tmp_path, "sweep_two"))
-    ax = figures.plot_sweep(keys, runs, axes_keys=["sgd.learning_rate"]).axes[0]
+    ax = figures.plot_sweep(keys, runs, metric="max_abs_z", axes_keys=["sgd.learning_rate"]).axes[0]
     assert len([line for line in ax.lines if line.get_linestyle() != "None"]) == 3
     assert [t.get_text() for t in ax.get_legend().get_texts()][:3] == ["$K$ = 2", "$K$ = 3", "$K$ = 4"]
+
+
+def _data_lines(ax) -> list[Line2D]:
+    return [line for line in ax.lines if line.get_linestyle() != "None" and len(line.get_xdata())]
+
+
+def test_sweep_final_error_shows_simulation_with_error_bars_and_theory(tmp_path):
+    # A sweep whose points are run folders written by the tool's own writers (runs.parquet rows and all).
+    rates = [0.2, 0.5, 1.0]
+    folder = write_sweep_of_runs(tmp_path, rates, theory_bias=0.2)
+    keys, runs = figures.read_sweep(folder)
+    ax = figures.plot_sweep(keys, runs).axes[0]  # the default: final test error
+    runs = runs.sort_values("sgd.learning_rate")
+    simulation, theory = _data_lines(ax)
+    np.testing.assert_allclose(simulation.get_xdata(), rates)
+    np.testing.assert_allclose(simulation.get_ydata(), runs["final_test_error"])
+    np.testing.assert_allclose(theory.get_ydata(), runs["final_theory_error"])
+    assert simulation.get_linestyle() == "-" and theory.get_linestyle() == "--"
+    # The error bars are the stored SEMs around the simulation means.
+    (bars,) = [c for c in ax.collections if isinstance(c, LineCollection)]
+    spans = [segment[:, 1] for segment in bars.get_segments()]
+    np.testing.assert_allclose([high - low for low, high in spans], 2 * runs["final_test_error_sem"].to_numpy())
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    assert legend[:2] == [r"simulation $\pm$ SEM", "theory"]
+    # The verdict markers stay: each point's marker is its test error's verdict in its run.
+    markers = {line.get_marker() for line in ax.lines if line.get_linestyle() == "None" and len(line.get_xdata())}
+    assert markers and set(legend[2:]) <= set(figures.VERDICT_MARKERS)
+    assert set(legend[2:]) == set(runs["verdict.test_error"])
+    assert ax.get_ylabel() == r"final $\varepsilon_g$"
+
+
+def test_sweep_panel_per_group_asked_for(tmp_path):
+    folder = write_sweep_of_runs(tmp_path, [0.2, 0.5, 1.0])
+    options = figures.FigureOptions(formats=("png",), groups=figures.parse_groups("test_error,Q"))
+    figures.check_folder(folder, options)
+    (png,) = figures.write_sweep_figure(folder, options)
+    assert png.name == "sweep_final_test_error_Q.png"
+    keys, runs = figures.read_sweep(folder)
+    finals = {group: figures.final_values(folder, runs, group) for group in options.groups}
+    fig = figures.plot_sweep(keys, runs, groups=options.groups, finals=finals)
+    assert [ax.get_ylabel() for ax in fig.axes] == [r"final $\varepsilon_g$", r"final $Q_{ij}$"]
+    q = finals["Q"]
+    assert sorted(q["observable"].unique()) == ["Q[0,0]", "Q[0,1]", "Q[1,1]"]  # one triangle of a symmetric Q
+    # Three entries: a simulation and a theory curve each, their values the runs' final Q.
+    lines = _data_lines(fig.axes[1])
+    assert len(lines) == 6
+    first = q[q["observable"] == "Q[0,0]"].merge(runs[["run_id", "sgd.learning_rate"]]).sort_values("sgd.learning_rate")
+    np.testing.assert_allclose(lines[0].get_ydata(), first["sim"])
+    np.testing.assert_allclose(lines[1].get_ydata(), first["theory"])
+    summary = pd.read_parquet(folder / first["run_id"].iloc[0] / "summary.parquet")
+    last = summary[(summary["observable"] == "Q[0,0]") & (summary["t"] == summary["t"].max())]
+    assert first["sim"].iloc[0] == pytest.approx(float(last["sim_mean"].iloc[0]))
+
+
+def test_sweep_groups_are_checked_before_drawing(tmp_path):
+    folder = write_sweep_of_runs(tmp_path, [0.2, 0.5])
+    with pytest.raises(figures.FigureInputError, match="--groups 'Z'"):
+        figures.parse_groups("Z")
+    with pytest.raises(figures.FigureInputError, match="--groups applies to --metric final_test_error"):
+        figures.check_folder(folder, figures.FigureOptions(metric="max_abs_z", groups=("Q",)))
+    with pytest.raises(figures.FigureInputError, match="--groups v: no run of the sweep"):
+        figures.check_folder(folder, figures.FigureOptions(groups=("v",)))  # no trained second layer
+    assert not (folder / "figures").exists()
 
 
 def test_sweep_rejects_unknown_metric_and_axes(tmp_path):
@@ -271,6 +396,23 @@ def test_sweep_rejects_unknown_metric_and_axes(tmp_path):
         figures.plot_sweep(keys, runs, metric="speed")
     with pytest.raises(figures.FigureInputError, match="--sweep-axes"):
         figures.plot_sweep(keys, runs, axes_keys=["data.input_dim"])
+
+
+def test_drawing_and_saving_choose_no_global_backend(tmp_path):
+    # Importing harness.plot, drawing and saving leave matplotlib's backend as the user set it
+    # (here MPLBACKEND=template, matplotlib's no-op backend); figures are written by each
+    # format's own writer. A fresh interpreter, so no earlier import has chosen anything.
+    run = write_run_folder(tmp_path, "run-backend")
+    script = (
+        "import matplotlib, harness.plot.figures as f; from pathlib import Path\n"
+        f"written = f.write_run_figures(Path({str(run)!r}), f.FigureOptions(formats=('png', 'pdf')))\n"
+        "import matplotlib.pyplot\n"
+        "print(matplotlib.get_backend(), len(written))\n"
+    )
+    environment = {**os.environ, "MPLBACKEND": "template", "PYTHONPATH": str(Path(__file__).resolve().parents[1])}
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, env=environment, check=True)
+    assert done.stdout.split() == ["template", "4"]
+    assert (run / "figures" / "learning_curve.png").read_bytes().startswith(b"\x89PNG")
 
 
 # ---------------------------------------------------------------------------------------

@@ -151,11 +151,12 @@ def test_a_run_and_a_theory_run_round_trip_through_their_files(tmp_path):
     out = tmp_path / "out"
     computed = pipeline.compute_run(scenario)
     stored = pipeline.store_run(computed, out)
-    assert sorted(path.name for path in stored.folder.iterdir()) == sorted([*RUN_FILES, "judgement.json"])
+    assert sorted(path.name for path in stored.folder.iterdir()) == sorted([*RUN_FILES, "judgement.json",
+                                                                           "landmarks.parquet"])
     same(computed.judgement, nulls_as_nan(strict_json((stored.folder / "judgement.json").read_text())), "judgement")
     same(computed.manifest, nulls_as_nan(strict_json((stored.folder / "manifest.json").read_text())), "manifest")
     for name, frame in (("trajectories", computed.trajectories), ("summary", computed.summary),
-                        ("metrics", computed.metrics)):
+                        ("metrics", computed.metrics), ("landmarks", computed.landmarks)):
         pd.testing.assert_frame_equal(pd.read_parquet(stored.folder / f"{name}.parquet"), frame, check_exact=True)
     assert scenario_lib.load(stored.folder / "scenario.toml") == scenario
     assert scenario_lib.run_id(scenario_lib.load(stored.folder / "scenario.toml")) == stored.folder.name

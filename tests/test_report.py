@@ -28,6 +28,7 @@ class PageReader(HTMLParser):
     def __init__(self) -> None:
         super().__init__(convert_charrefs=True)
         self.images: list[str] = []
+        self.image_boxes: dict[str, tuple[str | None, str | None]] = {}
         self.links: list[str] = []
         self.ids: list[str] = []
         self.tags: set[str] = set()
@@ -40,6 +41,7 @@ class PageReader(HTMLParser):
         self.tags.add(tag)
         if tag == "img":
             self.images.append(attributes["src"])
+            self.image_boxes[attributes["src"]] = (attributes.get("width"), attributes.get("height"))
         if tag == "a" and "href" in attributes:
             self.links.append(attributes["href"])
         if "id" in attributes:
@@ -104,6 +106,33 @@ def test_every_referenced_file_exists(results):
                 assert href[1:] in page.ids, href
             else:
                 assert (results / unquote(href)).exists(), href
+
+
+def test_every_image_declares_its_size(results):
+    # width and height on each <img> let the browser reserve the box of a lazily loaded figure,
+    # so the page does not shift while it loads. Reference for the size: Pillow reads the PNG.
+    from PIL import Image  # matplotlib depends on Pillow
+
+    page = read_page(results / "index.html")
+    for source, (width, height) in page.image_boxes.items():
+        with Image.open(results / unquote(source)) as image:
+            assert (width, height) == (str(image.width), str(image.height)), source
+    assert report.png_size(results / "index.html") is None  # not a PNG: no size claimed
+
+
+def test_scaling_advice_reads_as_prose(tmp_path):
+    # verdict.json stores the advice of an inconclusive scaling as a list of sentences
+    # (harness.studies.scaling); the page used to print the Python list literal.
+    folder = write_scaling_folder(tmp_path, "scaling_advice")
+    verdict = json.loads((folder / "verdict.json").read_text())
+    verdict.update(verdict="inconclusive", reason="the offset is neither resolved nor excluded",
+                   advice=["12-40 seeds at every size (now 4) would settle it", "adding N = 3200 would settle it"])
+    (folder / "verdict.json").write_text(json.dumps(verdict))
+    report.write_report(tmp_path, draw_figures=False)
+    text = " ".join(" ".join(read_page(tmp_path / "index.html").text).split())
+    assert ("the offset is neither resolved nor excluded · 12-40 seeds at every size (now 4) would settle it; "
+            "adding N = 3200 would settle it") in text
+    assert "['" not in text and "']" not in text
 
 
 def test_every_run_scaling_and_sweep_is_listed(results):

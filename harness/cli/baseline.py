@@ -7,6 +7,7 @@ import math
 import sys
 from pathlib import Path
 
+from harness.core.destinations import check_output_folder
 from harness.core.errors import InputError
 from harness.studies.baselines import (
     BUILTIN_BASELINES,
@@ -32,7 +33,7 @@ def _positive_tolerance(option: str, value: float | None) -> float | None:
 def _cmd_save(args: argparse.Namespace) -> int:
     from harness.core import scenario as scenario_lib
 
-    directory = Path(args.dir)
+    directory = check_output_folder(args.dir, "--dir")
     jobs: list[tuple[str, dict]] = []  # (name, resolved scenario), all validated before any solve
     if args.name is not None and len(args.scenarios) != 1:
         raise InputError("--name: only with exactly one SCENARIO file")
@@ -67,7 +68,8 @@ def _cmd_save(args: argparse.Namespace) -> int:
         if (directory / name).exists() and not args.force:
             raise InputError(f"baseline '{directory / name}' exists; use --force to replace its reference trajectories")
     for index, (name, scenario) in enumerate(jobs, start=1):
-        sys.stderr.write(f"baseline: {index}/{len(jobs)} solving {name}\n")
+        replacing = " (replacing the stored one; its tolerances.toml is kept)" if (directory / name).exists() else ""
+        sys.stderr.write(f"baseline: {index}/{len(jobs)} solving {name}{replacing}\n")
         folder = save_baseline(scenario, directory, name, force=args.force)
         print(f"saved {folder}")
     return 0

@@ -1,7 +1,8 @@
 """The `figure` and `report` subcommands, registered on the main parser by harness/cli/main.py.
 
     harness figure FOLDER... [--format png,pdf] [--size single|double|W,H] [--per-seed]
-                             [--seeds-shown N] [--metric NAME] [--sweep-axes KEY[,KEY]]
+                             [--seeds-shown N] [--metric NAME] [--groups GROUP[,GROUP]]
+                             [--sweep-axes KEY[,KEY]]
     harness report DIR [--keep-figures]
 
 Each handler takes the parsed namespace and returns the exit status: 0 on success, 2 on
@@ -58,6 +59,13 @@ def add_figure_commands(subparsers: argparse._SubParsersAction) -> None:
         help="sweep metric: final_test_error, max_abs_z, final_rel_err, divergence_t, or a numeric runs.parquet column",
     )
     figure.add_argument(
+        "--groups",
+        default="test_error",
+        metavar="GROUP[,GROUP]",
+        help="sweep curves of final values: one panel per observable group, from test_error, overlap_error, "
+        "Q, R, T, v (default: test_error)",
+    )
+    figure.add_argument(
         "--sweep-axes",
         default=None,
         metavar="KEY[,KEY]",
@@ -88,6 +96,7 @@ def _fail(command: str, message: str) -> int:
 
 
 def run_figure_command(args: argparse.Namespace) -> int:
+    from harness.core.errors import InputError
     from harness.plot import figures
 
     try:
@@ -101,24 +110,32 @@ def run_figure_command(args: argparse.Namespace) -> int:
             seeds_shown=args.seeds_shown,
             metric=args.metric,
             sweep_axes=axes,
+            groups=figures.parse_groups(args.groups),
         )
-        # Check every folder before drawing anything, so bad input leaves no partial output.
+        # Check every folder (its tables, what is asked of it, that figures/ can be written)
+        # before drawing anything, so bad input leaves no partial output.
         for folder in args.folders:
-            figures.folder_kind(folder)
+            figures.check_folder(folder, options)
         for folder in args.folders:
             for path in figures.write_figures(folder, options):
                 print(path)
-    except figures.FigureInputError as error:
+    except InputError as error:
         return _fail("figure", str(error))
     return 0
 
 
 def run_report_command(args: argparse.Namespace) -> int:
+    from harness.core.destinations import check_output_folder
+    from harness.core.errors import InputError
     from harness.plot import figures, report
 
     try:
+        if not args.folder.is_dir():
+            raise figures.FigureInputError(
+                f"{args.folder}: not a folder; expected a results folder holding run folders")
+        check_output_folder(args.folder, "DIR")  # index.html and figures are written there
         pages = report.write_report(args.folder, draw_figures=not args.keep_figures)
-    except figures.FigureInputError as error:
+    except InputError as error:
         return _fail("report", str(error))
     print(pages[0])
     return 0

@@ -41,10 +41,12 @@ def output_path(out: Path, scenario: dict[str, Any]) -> Path:
 
 def run_fixed_points_command(args: argparse.Namespace) -> int:
     from harness.core import scenario as scenario_lib
+    from harness.core.destinations import check_output_folder
     from harness.core.files import atomic_write_json
     from harness.equations import fixed_points
 
     scenario = scenario_lib.load(args.scenario)  # bad input raises InputError before any work
+    check_output_folder(args.out, "--out")
     result = fixed_points.fixed_points(scenario)
     path = output_path(args.out, scenario)
     atomic_write_json(path, result)

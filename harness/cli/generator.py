@@ -16,6 +16,7 @@ import argparse
 import sys
 from pathlib import Path
 
+from harness.core.destinations import check_output_file, check_output_folder
 from harness.core.errors import InputError
 
 DEFAULT_NAME = "digits"
@@ -99,6 +100,8 @@ def _cmd_train(args: argparse.Namespace) -> int:
     from harness.runner.progress import Progress
 
     store = args.store if args.store is not None else default_store()
+    if args.force or not (Path(store) / args.name).exists():  # it will write there
+        check_output_folder(store, "--store")
     trained = False
     with Progress("training", args.epochs, enabled=not args.quiet) as bar:
 
@@ -150,30 +153,33 @@ def _cmd_list(args: argparse.Namespace) -> int:
 def _cmd_preview(args: argparse.Namespace) -> int:
     if args.count < 1:
         raise InputError(f"--count {args.count} must be a positive integer")
+    from harness.data.trained_generator import check_name
+
+    out = args.out if args.out is not None else Path(f"{check_name(args.name)}-preview.png")
+    check_output_file(out, "--out")
+    import io
     import math
 
     import jax
-    import matplotlib
+    from matplotlib.figure import Figure  # no pyplot: no backend is chosen, the PNG writer is used directly
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
+    from harness.core.files import atomic_write_bytes
     from harness.data.trained_generator import load_generator, sample_images
 
     generator = load_generator(args.name, args.store)
     images = sample_images(generator, jax.random.PRNGKey(args.seed), args.count)
     columns = math.ceil(math.sqrt(args.count))
     rows = math.ceil(args.count / columns)
-    figure, axes = plt.subplots(rows, columns, figsize=(columns * 0.8, rows * 0.8), squeeze=False)
+    figure = Figure(figsize=(columns * 0.8, rows * 0.8))
+    axes = figure.subplots(rows, columns, squeeze=False)
     for index, ax in enumerate(axes.ravel()):
         ax.axis("off")
         if index < args.count:
             ax.imshow(images[index], cmap="gray_r", vmin=0.0, vmax=1.0)
     figure.subplots_adjust(left=0.02, right=0.98, bottom=0.02, top=0.92, wspace=0.05, hspace=0.05)
     figure.suptitle(f"{generator.name}: G(c), c ~ N(0, I_{generator.latent_dim})", fontsize=8)
-    out = args.out if args.out is not None else Path(f"{generator.name}-preview.png")
-    out.parent.mkdir(parents=True, exist_ok=True)
-    figure.savefig(out, dpi=100)
-    plt.close(figure)
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=100)
+    atomic_write_bytes(out, buffer.getvalue())
     sys.stdout.write(f"{args.count} decoded images -> {out}\n")
     return 0

@@ -7,12 +7,32 @@ import sys
 from pathlib import Path
 
 DEFAULT_OUT = Path("results")
+PRACTICAL_SEED_FACTOR = 50
+"""More than this many times the seeds run is called beyond practical reach."""
 
 
 def _load_scenario(path: str | None):
     from harness.core import scenario as scenario_lib
 
     return scenario_lib.load(path)
+
+
+def check_out(out: Path) -> None:
+    """The results folder can take the run (harness.core.destinations), checked before any work."""
+    from harness.core.destinations import check_output_folder
+
+    check_output_folder(out, "--out")
+
+
+def announce_replacement(folder: Path, what: str = "run") -> None:
+    """With --force, say on stderr (one line) which stored run is replaced and what happens to its figures."""
+    from harness.results.store import is_complete_run
+
+    if not is_complete_run(folder):
+        return
+    kept = (" (its figures/ are kept, older than the new tables: 'harness report' or 'harness figure' redraws them)"
+            if (folder / "figures").is_dir() else "")
+    sys.stderr.write(f"harness: --force: replacing the stored {what} '{folder}'{kept}\n")
 
 
 def _number(value, digits: int = 3) -> str:
@@ -43,8 +63,14 @@ def format_judgement(record: dict) -> list[str]:
     text = f"  verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
     if verdict == "inconclusive":
         needed = record.get("seeds_needed")
-        text += (": no number of seeds would settle it at this margin" if needed is None or needed == float("inf")
-                 else f": about {int(needed)} seeds would settle it (an estimate from the measured spread)")
+        seeds = record.get("band_seeds") or 0
+        if needed is None or needed == float("inf"):
+            text += ": no number of seeds would settle it at this margin"
+        elif seeds and needed > PRACTICAL_SEED_FACTOR * seeds:
+            text += (f": about {int(needed)} seeds would settle it, beyond practical reach at this margin "
+                     "(a wider [agreement] margin is the realistic change)")
+        else:
+            text += f": about {int(needed)} seeds would settle it (an estimate from the measured spread)"
     lines.append(text)
     band = f"c = {_number(record['band_factor'])}, {record['band_method']}"
     if record.get("band_cells"):
@@ -55,6 +81,70 @@ def format_judgement(record: dict) -> list[str]:
         f"   margin = {record['margin']:g} x an error's value at each time (at least {record['floor']:g} x its "
         f"largest), {record['margin']:g} x an order-parameter group's largest size; band = mean +- {band})"
     )
+    return lines
+
+
+def _with_interval(mean, low, high) -> str:
+    """'172 [166, 178]' (a mean with its pointwise interval; '-' where undetermined)."""
+    if mean is None or mean != mean:
+        return "-"
+    if low is None or high is None or low != low:
+        return f"{mean:.3g}"
+    return f"{mean:.3g} [{low:.3g}, {high:.3g}]"
+
+
+def _landmark_difference(row: dict) -> str:
+    if row["diff_mean"] is None:
+        return "-"
+    band = row["band"]
+    return f"{row['diff_mean']:+.2g}" + (f" ± {band:.2g}" if band is not None else "")
+
+
+def _band_factors(rows: list[dict]) -> str:
+    """The band factors c = band / se of the judged landmarks: one number, or their range."""
+    factors = sorted(r["band"] / r["diff_sem"] for r in rows if r["band"] is not None and r["diff_sem"])
+    if not factors:
+        return "-"
+    low, high = _number(factors[0]), _number(factors[-1])
+    return low if low == high else f"{low} to {high}"
+
+
+def format_landmarks(record: dict) -> list[str]:
+    """A run's landmark table (judgement.json's "landmarks", harness.results.paired_landmarks), as terminal lines."""
+    section = record.get("landmarks")
+    if not section:
+        return []
+    rows = [r for r in section["table"] if r["sim_seeds"] or r["theory_seeds"]]
+    table = [
+        ["landmark", "verdict", "simulation", "theory", "theory - sim.", "margin", "seeds", "seeds to settle"],
+        ["", "", "mean [95 % interval]", "mean [95 % interval]", "± band", "", "sim/th", ""],
+    ]
+    for r in rows:
+        settle = _seeds(r["seeds_needed"], r["verdict"]) if r["presence"] not in ("theory only", "simulation only") \
+            else f"found in the {r['presence'].removesuffix(' only')} only"
+        table.append([
+            r["landmark"], r["verdict"].upper() if r["verdict"] == "disagree" else r["verdict"],
+            _with_interval(r["sim_mean"], r["sim_low"], r["sim_high"]),
+            _with_interval(r["theory_mean"], r["theory_low"], r["theory_high"]),
+            _landmark_difference(r), _number(r["margin"], 2), f"{r['sim_seeds']}/{r['theory_seeds']}", settle,
+        ])
+    widths = [max(len(line[c]) for line in table) for c in range(len(table[0]))]
+    lines = ["  " + "  ".join(cell.ljust(w) for cell, w in zip(line, widths, strict=True)).rstrip() for line in table]
+    verdict = section["verdict"]
+    text = f"  landmark verdict: {verdict.upper() if verdict == 'disagree' else verdict}"
+    if verdict == "inconclusive":
+        needed = section.get("seeds_needed")
+        text += (": no number of seeds would settle it" if needed is None or needed == float("inf")
+                 else f": about {int(needed)} seeds would settle it")
+    lines.append(text)
+    lines.append(
+        f"  (landmarks measured seed by seed on the {section['options']['error']} curve; theory - sim.: paired mean "
+        f"± its {100 * (1 - section['alpha']):.3g} % simultaneous band, c = {_band_factors(rows)} "
+        f"({section['band_method']});\n   margin = {section['margin']:g} x the simulated landmark; "
+        "the landmark verdict does not change the run's, which is the curves')"
+    )
+    if section.get("sampling_warning"):
+        lines.append(f"  warning: {section['sampling_warning']}")
     return lines
 
 
@@ -96,6 +186,8 @@ def print_run_summary(stored, scenario, *, stream=None) -> None:
     if stored.judgement is None:
         return
     for line in format_judgement(stored.judgement):
+        stream.write(line + "\n")
+    for line in format_landmarks(stored.judgement):
         stream.write(line + "\n")
     for line in describe_gaps(stored.judgement.get("gaps", {})):
         stream.write(f"  {line}\n")
@@ -168,9 +260,13 @@ def _cmd_run(args: argparse.Namespace) -> int:
     # guarded from the first line on: resolving a scenario imports JAX modules, which can drop a Ctrl-C
     with interrupts.guard(lambda: _interrupted_message(kept[0] if kept else None)):
         scenario = _load_scenario(args.scenario)  # validate before any heavy work
+        check_out(args.out)
         from harness.core.scenario import run_id
         from harness.runner.checkpoint import checkpoint_folder
         from harness.runner.pipeline import run_and_store
+
+        if args.force:
+            announce_replacement(args.out / run_id(scenario))
 
         kept.append(checkpoint_folder(args.out, run_id(scenario)))
         line, simulation, theory = _progress_line(args.quiet)
@@ -199,7 +295,13 @@ def _cmd_theory(args: argparse.Namespace) -> int:
 
     with interrupts.guard():
         scenario, out = _theory_target(args)
+        check_out(out)
         from harness.runner.pipeline import theory_and_store
+
+        if args.force:
+            from harness.core.scenario import run_id
+
+            announce_replacement(out / (run_id(scenario) + "-theory"), "theory run")
 
         line, _, theory = _progress_line(args.quiet)
         line.restart("theory", 1)

@@ -1,11 +1,17 @@
-"""``harness scale SCENARIO --sizes ...``: does the gap between theory and simulation vanish as N grows?"""
+"""``harness scale SCENARIO --sizes ...``: does the gap between theory and simulation vanish as N grows?
+
+With ``--observable landmark:NAME``: does the theory's landmark follow the simulation's as N grows?
+"""
 
 from __future__ import annotations
 
 import argparse
+import sys
 from pathlib import Path
 
 from harness.core import scenario as scenario_lib
+from harness.core.destinations import check_output_folder
+from harness.results.store import is_complete_run
 from harness.studies.scaling import (
     DEFAULT_OBSERVABLE,
     DEFAULT_RESOLUTION,
@@ -21,7 +27,16 @@ from harness.studies.scaling import (
 def _cmd_scale(args: argparse.Namespace) -> int:
     scenario = scenario_lib.load(args.scenario)
     sizes = parse_sizes(args.sizes)
-    validate(scenario, sizes, args.observable, args.resolution, args.min_exponent)  # every check before any work
+    # every check before any work: the sizes and options, then where the results go
+    per_size = validate(scenario, sizes, args.observable, args.resolution, args.min_exponent)
+    check_output_folder(args.out, "--out")
+    if args.force:
+        replaced = [scenario_lib.run_id(s) for s in per_size if is_complete_run(args.out / scenario_lib.run_id(s))]
+        if replaced:
+            sys.stderr.write(
+                f"harness: --force: replacing {len(replaced)} stored run(s) in '{args.out}' ({', '.join(replaced)}); "
+                "their figures/ are kept, older than the new tables: 'harness report' redraws them\n"
+            )
     verdict = run_scaling(
         scenario, sizes, args.out, observable=args.observable, resolution=args.resolution,
         min_exponent=args.min_exponent, force=args.force, show_progress=not args.quiet,
@@ -38,7 +53,9 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
         description=(
             "Runs SCENARIO at each input size (data.input_dim; each size is an ordinary stored run, reused "
             "when complete), measures the gap between theory and simulation at each size, fits "
-            "gap(N) = a N^-b + c and writes DIR/<scale_id>/verdict.json. Exit status: 0 consistent, "
+            "gap(N) = a N^-b + c and writes DIR/<scale_id>/verdict.json. With --observable landmark:NAME it "
+            "judges the landmark's theory against its simulation at every size and in its growth per e-fold "
+            "of N, and fits a + b ln N and a N^-b + c to each side. Exit status: 0 consistent, "
             "1 inconsistent, 3 inconclusive, 2 bad input."
         ),
     )
@@ -48,12 +65,13 @@ def add_scale_command(subparsers: argparse._SubParsersAction) -> None:
     scale.add_argument(
         "--observable", default=DEFAULT_OBSERVABLE,
         help=f"observable whose gap is measured (default: {DEFAULT_OBSERVABLE}; overlap_error avoids "
-        "the held-out set's noise)",
+        "the held-out set's noise), or landmark:NAME (e.g. landmark:plateau_exit) to judge a landmark at every "
+        "size and its growth with ln N",
     )
     scale.add_argument(
         "--resolution", type=float, default=DEFAULT_RESOLUTION,
         help="smallest offset worth detecting, relative to the observable's rms over time "
-        f"(default: {DEFAULT_RESOLUTION:g})",
+        f"(default: {DEFAULT_RESOLUTION:g}; a landmark is judged with the scenario's [agreement] margin instead)",
     )
     scale.add_argument(
         "--min-exponent", type=float, default=EXPONENT_BOUNDS[0],

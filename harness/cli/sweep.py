@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from harness.core.destinations import check_output_folder
 from harness.results.store import is_complete_run
 from harness.studies.sweep import (
     JOBQUEUE_KINDS,
@@ -35,6 +36,8 @@ def _positive_int(text: str) -> int:
 def _cmd_sweep(args) -> int:
     plan = load_sweep(args.sweep_file)  # every point checked before anything starts
     out_dir = args.out if args.out is not None else Path("results") / plan.source.stem
+    if not args.list:  # --list writes nothing
+        check_output_folder(out_dir, "--out")
     if args.list:
         for i, (point, run_id) in enumerate(zip(plan.points, plan.run_ids, strict=True)):
             state = "complete" if is_complete_run(Path(out_dir) / run_id) else "to do"

@@ -31,7 +31,7 @@ import re
 import secrets
 import shutil
 import socket
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
@@ -172,8 +172,13 @@ def atomic_write_parquet(path: str | Path, frame: pd.DataFrame) -> None:
     atomic_write_bytes(path, buffer.getvalue())
 
 
-def publish_folder(staging: Path, final: Path, *, replace: bool) -> None:
-    """Move a fully written staging folder to its final name in one rename."""
+def publish_folder(staging: Path, final: Path, *, replace: bool, keep: Sequence[str] = ()) -> None:
+    """Move a fully written staging folder to its final name in one rename.
+
+    With ``replace``, an existing ``final`` is renamed aside first and removed after the
+    swap; the entries named in ``keep`` (e.g. ``"figures"``) that it holds and the new folder
+    does not are moved into the new folder before that, so they survive the replacement.
+    """
     if final.exists():
         if not replace:
             shutil.rmtree(staging, ignore_errors=True)
@@ -181,6 +186,9 @@ def publish_folder(staging: Path, final: Path, *, replace: bool) -> None:
         retired = final.with_name(f".{final.name}.retired-{os.getpid()}")
         os.replace(final, retired)
         os.replace(staging, final)
+        for name in keep:
+            if (retired / name).exists() and not (final / name).exists():
+                os.replace(retired / name, final / name)
         shutil.rmtree(retired, ignore_errors=True)
     else:
         os.replace(staging, final)

@@ -1,7 +1,7 @@
 """Scenario files: the schema assembled from declarations, validation, the run identifier.
 
 A scenario is a TOML file with the sections ``data``, ``teacher``, ``student``, ``sgd``,
-``run``, ``theory`` and ``agreement`` (and ``sweep`` for sweep files, handled in
+``run``, ``theory``, ``agreement`` and ``landmarks`` (and ``sweep`` for sweep files, handled in
 harness.studies.sweep). Every key has a default, so an empty file, or no file at all, is the
 embedded default scenario. :func:`resolve` turns a parsed TOML table into a *resolved
 scenario*: an immutable :class:`Scenario` whose sections are typed, frozen objects
@@ -68,8 +68,11 @@ class _Registry:
 
 _REGISTRY = _Registry()
 
-JUDGING_SECTIONS: tuple[str, ...] = ("agreement",)
-"""Sections that say how to judge a run, not what to compute: left out of its run_id."""
+JUDGING_SECTIONS: tuple[str, ...] = ("agreement", "landmarks")
+"""Sections that say how to judge a run, not what to compute: left out of its run_id.
+
+[agreement] is the verdict's margin (harness.results.judgement), [landmarks] how the landmarks of
+the curves are measured and which are judged (harness.results.landmarks)."""
 BUILTINS = "harness.builtins"
 """The module whose import declares every built-in data kind, theory source, engine and optimizer."""
 

@@ -101,6 +101,23 @@ class AgreementSection(Section):
     alpha: float  # error rate of the verdict, joint over every time and observable
 
 
+@dataclass(frozen=True)
+class LandmarksSection(Section):
+    """The [landmarks] table."""
+
+    error: str  # the error curve whose landmarks are measured
+    judged: tuple[str, ...]  # landmarks held against the theory (paired, with a verdict)
+    plateau_slope: float  # largest |d ln eps / d ln t| on a plateau; also the fall that must precede it
+    slope_window: float  # half-width in ln t of the difference quotient for d ln eps / d ln t
+    plateau_min_span: float  # a plateau lasts at least this factor in t
+    exit_fraction: float  # the plateau is left when eps falls to (1 - exit_fraction) x its height
+    specialisation_threshold: float  # sigma_R (spread of R across student units, in [0, 1]) above which units are spec
+    tail_fraction: float  # the last stretch (decay rate, asymptotic error) is t >= (1 - tail_fraction) t_end
+    error_floor: float  # errors at or below this are numerical noise: no slopes, no fits there
+    min_points: int  # fewest evaluations that resolve a plateau or a last stretch (else a warning)
+    max_bracket_ratio: float  # largest t_after / t_before around a crossing time (else a warning)
+
+
 class Scenario(ScenarioBase):
     """A resolved scenario (harness.core.scenario.resolve)."""
 
@@ -111,6 +128,7 @@ class Scenario(ScenarioBase):
     run: RunSection
     theory: TheorySection
     agreement: AgreementSection
+    landmarks: LandmarksSection
 
 
 SECTION_TYPES: dict[str, type[Section]] = {
@@ -121,4 +139,5 @@ SECTION_TYPES: dict[str, type[Section]] = {
     "run": RunSection,
     "theory": TheorySection,
     "agreement": AgreementSection,
+    "landmarks": LandmarksSection,
 }

@@ -40,7 +40,7 @@ VERDICTS = ("agree", "disagree", "inconclusive", "n/a")
 OVERVIEW_KEYS = 6
 SWEEP_PAGE_METRICS = ("final_test_error", "max_abs_z", "divergence_t")
 SWEEP_CAPTIONS = {
-    "final_test_error": "final test error (simulation mean)",
+    "final_test_error": "final test error: simulation mean ± SEM and theory (heat maps: simulation mean)",
     "max_abs_z": "largest |z| of the test error",
     "divergence_t": "time at which the theory departs",
 }
@@ -173,7 +173,7 @@ def read_run(path: Path) -> RunEntry:
     metrics = figures.read_metrics(path)
     final = math.nan
     if (path / "summary.parquet").is_file():
-        test = figures._read_parquet(
+        test = figures.read_parquet_table(
             path / "summary.parquet",
             ("t", "observable", "sim_mean"),
             filters=[("observable", "==", "test_error")],
@@ -440,11 +440,32 @@ def varying_keys(runs: Sequence[RunEntry]) -> list[str]:
     return [key for key in keys if len({json.dumps(run.scenario[key], default=str) for run in runs}) > 1]
 
 
+def png_size(path: Path) -> tuple[int, int] | None:
+    """Width and height in pixels from a PNG's header (its IHDR chunk), or None if it is not a PNG.
+
+    PNG specification (W3C, 2003), sections 5.2-5.3 and 11.2.2: an 8-byte signature, then
+    the IHDR chunk whose data starts with the width and height as 4-byte big-endian integers.
+    """
+    try:
+        with open(path, "rb") as stream:
+            head = stream.read(24)
+    except OSError:
+        return None
+    if len(head) < 24 or head[:8] != b"\x89PNG\r\n\x1a\n" or head[12:16] != b"IHDR":
+        return None
+    return int.from_bytes(head[16:20], "big"), int.from_bytes(head[20:24], "big")
+
+
 def _figure_html(files: dict[str, Path], root: Path, captions: dict[str, str]) -> str:
     items = []
     for name, png in files.items():
         pdf = png.with_suffix(".pdf")
-        image = f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}" loading="lazy">'
+        # width and height let the browser reserve each lazily loaded image's box (its aspect
+        # ratio) before the file arrives, so the page does not shift as images load; the style
+        # sheet still sets the shown width.
+        size = png_size(png)
+        box = f' width="{size[0]}" height="{size[1]}"' if size else ""
+        image = f'<img src="{_href(png, root)}" alt="{_e(captions.get(name, name))}"{box} loading="lazy">'
         if pdf.is_file():
             image = f'<a href="{_href(pdf, root)}" title="vector PDF">{image}</a>'
         items.append(f"<figure>{image}<figcaption>{_e(captions.get(name, name))}</figcaption></figure>")
@@ -547,7 +568,7 @@ def _run_card(run: RunEntry, root: Path, varying: Sequence[str]) -> str:
 <article id="{_anchor("run", run.run_id)}" class="run">
 <h3>{_e(run.run_id)} {_badge(run.verdict)}</h3>
 <p class="scenario">{scenario_line}</p>
-{diverged_note}{_verdict_html(run.judgement)}{figure_block}{note}
+{diverged_note}{_verdict_html(run.judgement)}{_landmarks_html(run.judgement)}{figure_block}{note}
 {_metrics_table(run.metrics, main_names)}
 {_details(f"metrics of every order parameter ({len(other_names)})", others) if others else ""}
 <div class="columns">
@@ -591,6 +612,40 @@ def _verdict_html(judgement: dict | None) -> str:
     gaps = "".join(f"<li>{_e(line)}</li>" for line in describe_gaps(judgement.get("gaps") or {}))
     return (f'<div class="verdict">{_table(head, rows)}<p class="scenario">{_e(settings)}</p>'
             + (f'<ul class="scenario">{gaps}</ul>' if gaps else "") + "</div>")
+
+
+def _landmarks_html(judgement: dict | None) -> str:
+    """A small table of the run's landmarks (judgement.json's landmarks, harness.results.paired_landmarks)."""
+    section = (judgement or {}).get("landmarks")
+    if not section:
+        return ""
+
+    def interval(row: dict, side: str) -> str:
+        low, high = row.get(f"{side}_low"), row.get(f"{side}_high")
+        bounds = f" [{_fmt(low)}, {_fmt(high)}]" if low is not None and high is not None else ""
+        return _e(_fmt(row.get(f"{side}_mean")) + bounds)
+
+    rows = []
+    for row in section["table"]:
+        if not (row["sim_seeds"] or row["theory_seeds"]):
+            continue
+        band = f" ± {_fmt(row['band'])}" if row.get("band") is not None else ""
+        difference = _e(f"{_fmt(row['diff_mean'])}{band}") if row.get("diff_mean") is not None else "–"
+        rows.append(
+            f'<tr><td class="text">{_e(row["landmark"])}</td><td class="text">{_badge(row["verdict"])}</td>'
+            f"<td>{interval(row, 'sim')}</td><td>{interval(row, 'theory')}</td><td>{difference}</td>"
+            f"<td>{_e(_fmt(row['margin']))}</td><td>{row['sim_seeds']}/{row['theory_seeds']}</td>"
+            f'<td class="text">{_e(row["presence"])}</td></tr>'
+        )
+    head = ('<th class="text">landmark</th><th class="text">verdict</th><th>simulation [95 %]</th>'
+            '<th>theory [95 %]</th><th>theory − sim. ± band</th><th>margin</th><th>seeds sim/th</th>'
+            '<th class="text">found in</th>')
+    note = (f"landmarks of {section['options']['error']}, seed by seed: landmark verdict "
+            f"{section['verdict']}; margin {_fmt(section['margin'])} × the simulated landmark, "
+            f"{_fmt(100 * (1 - section['alpha']))} % simultaneous band ({section['band_method']}); "
+            "it does not change the run's verdict")
+    warning = f'<p class="note">{_e(section["sampling_warning"])}</p>' if section.get("sampling_warning") else ""
+    return f'<div class="verdict">{_table(head, rows)}<p class="scenario">{_e(note)}</p>{warning}</div>'
 
 
 def _short_keys(keys: Sequence[str]) -> dict[str, str]:
@@ -643,6 +698,13 @@ def _pm_html(value: object, error: object) -> str:
     return f"({_e(mantissa)} ± {_e(spread)}) × 10<sup>{exponent}</sup>"
 
 
+def _sentences(value: object) -> str:
+    """A verdict.json text field as prose: a list (the scaling advice) joined with semicolons."""
+    if isinstance(value, (list, tuple)):
+        return "; ".join(str(item) for item in value)
+    return str(value)
+
+
 def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
     if not entries:
         return '<p class="empty">No finite-size-scaling results in this folder.</p>'
@@ -650,6 +712,9 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
     for entry in entries:
         v = entry.verdict
         name = os.path.relpath(entry.path, root)
+        if v.get("kind") == "landmark":
+            parts.append(_landmark_scaling_html(entry, root))
+            continue
         rows = [
             ("exponent b", _pm_html(v["exponent"], v["exponent_err"])),
             ("offset c", _pm_html(v["offset"], v["offset_err"])),
@@ -659,7 +724,7 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
         table = "".join(f'<tr><td class="text">{_e(k)}</td><td class="text mono">{val}</td></tr>' for k, val in rows)
         note = f'<p class="note">{_e(entry.figure_note)}</p>' if entry.figure_note else ""
         # verdict.json from `harness scale` also says why and what to do next; show it when present.
-        explanation = "".join(f" · {_e(v[key])}" for key in ("reason", "advice") if v.get(key))
+        explanation = "".join(f" · {_e(_sentences(v[key]))}" for key in ("reason", "advice") if v.get(key))
         parts.append(
             f"""<article id="{_anchor("scaling", name)}">
 <h3>{_e(name)} {_badge(str(v["verdict"]))}</h3>
@@ -669,6 +734,45 @@ def _scaling_section(entries: Sequence[ScalingEntry], root: Path) -> str:
 </article>"""
         )
     return "".join(parts)
+
+
+def _landmark_scaling_html(entry: ScalingEntry, root: Path) -> str:
+    """A landmark across sizes (harness.studies.landmark_scaling): the table per size and the growth."""
+    v = entry.verdict
+    name = os.path.relpath(entry.path, root)
+
+    def interval(side: str, i: int) -> str:
+        return _e(f"{_fmt(v[f'{side}_means'][i])} [{_fmt(v[f'{side}_lows'][i])}, {_fmt(v[f'{side}_highs'][i])}]")
+
+    rows = []
+    for i, size in enumerate(v["sizes"]):
+        item = v["items"][i]
+        rows.append(
+            f"<tr><td>{_e(_fmt(size))}</td><td>{interval('sim', i)}</td><td>{interval('theory', i)}</td>"
+            f"<td>{_e(_fmt(item['mean']))} ± {_e(_fmt(item['half_width']))}</td><td>{_e(_fmt(item['delta']))}</td>"
+            f'<td class="text">{_e(v["presence"][i])}</td><td class="text">{_badge(item["verdict"])}</td></tr>'
+        )
+    growth = v["growth"]
+    rows.append(
+        f'<tr><td class="text">growth per e-fold of N</td><td></td><td></td>'
+        f"<td>{_e(_fmt(growth['difference']))} ± {_e(_fmt(growth['band']))}</td><td>{_e(_fmt(growth['margin']))}</td>"
+        f'<td></td><td class="text">{_badge(growth["verdict"])}</td></tr>'
+    )
+    head = ("<th>N</th><th>simulation [95 %]</th><th>theory [95 %]</th><th>theory − sim. ± band</th><th>margin</th>"
+            '<th class="text">found in</th><th class="text">verdict</th>')
+    laws = "; ".join(
+        f"{side}: {law['law']} with " + ", ".join(f"{k} = {_fmt(val)}" for k, val in law["params"].items())
+        for side, fits in (v.get("fits") or {}).items() for law in fits.values()
+    )
+    explanation = "".join(f" · {_e(v[key])}" for key in ("reason", "advice") if v.get(key))
+    note = f'<p class="note">{_e(entry.figure_note)}</p>' if entry.figure_note else ""
+    return f"""<article id="{_anchor("scaling", name)}">
+<h3>{_e(name)} {_badge(str(v["verdict"]))}</h3>
+<p class="scenario">{_e(v["landmark"])} across sizes: theory against simulation at each N and in its growth\
+{explanation}</p>
+{_table(head, rows)}<p class="scenario">{_e(laws)}</p>
+{_figure_html(entry.figure_files, root, {"scaling": "the landmark against N with its fitted growth"})}{note}
+</article>"""
 
 
 def _sweep_section(entries: Sequence[SweepEntry], root: Path, run_ids: set[str]) -> str:

@@ -37,6 +37,7 @@ from harness.results.judgement import (
     mean_sem,
     relative_gap,
 )
+from harness.results.paired_landmarks import LandmarkOptions, PairedLandmarks, pair_landmarks
 
 SUMMARY_COLUMNS = ["t", "observable", "sim_mean", "sim_sem", "theory_mean", "diff_mean", "diff_sem", "z"]
 """The fixed columns of summary.parquet (other tools read them); the extra columns follow them."""
@@ -59,6 +60,7 @@ class Comparison(NamedTuple):
     metrics: pd.DataFrame
     judgement: Judgement
     gaps: dict[str, Any]  # :func:`gap_report`
+    landmarks: PairedLandmarks | None = None  # harness.results.paired_landmarks (None: not measured)
 
 
 def _ratio(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
@@ -143,11 +145,17 @@ def _nanmax(values: np.ndarray) -> float:
     return float(values.max()) if values.size else math.nan
 
 
-def compare(traj: Trajectories, margin: Margin, diverged_at: np.ndarray | None = None) -> Comparison:
-    """Summary, metrics, verdict and gaps of one run's trajectories."""
+def compare(
+    traj: Trajectories,
+    margin: Margin,
+    diverged_at: np.ndarray | None = None,
+    landmarks: LandmarkOptions | None = None,
+) -> Comparison:
+    """Summary, metrics, verdict and gaps of one run's trajectories, and its landmarks when ``landmarks`` is given."""
     judgement = judge(traj, margin)
     summary = summarise(traj, judgement)
-    return Comparison(summary, metrics(summary, judgement), judgement, gap_report(traj, margin, diverged_at))
+    paired = pair_landmarks(traj, landmarks, margin, diverged_at) if landmarks is not None else None
+    return Comparison(summary, metrics(summary, judgement), judgement, gap_report(traj, margin, diverged_at), paired)
 
 
 # ------------------------------------------------------------------------------ the gaps

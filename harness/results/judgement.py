@@ -73,6 +73,14 @@ tests/test_judgement_calibration.py and documented in docs/judgement.md.
 Separately, a difference is *detectable* where the band excludes zero (|m| > c se): a small
 finite-size offset well inside the margin is information, not a failure.
 
+Scalars (landmarks). The same rule judges quantities that are one number per seed, such as the
+plateau's exit time (harness.results.paired_landmarks): d_s(l) = theory_s(l) - sim_s(l) over
+the seeds where both sides have quantity l, one cell per quantity (E = 1), the band factor c
+over the judged quantities as above (below the bootstrap's seeds each quantity's Sidak factor
+uses its own seeds: the counts differ from quantity to quantity), and a margin relative to each quantity's own simulated
+size, delta_l = margin * |mean_s sim_s(l)| (mean over the same seeds). The quantities' outcomes
+combine into one as the groups' do (:func:`combine_verdicts`).
+
 Seeds needed. The band's half-width shrinks like 1/sqrt(S). Agreement needs, at every cell,
 c' se sqrt(S/S') <= delta - |m|, i.e. S' >= S (c' se / (delta - |m|))^2 (impossible where
 |m| >= delta); disagreement needs one cell with S' >= S (c' se / (|m| - delta))^2. c' is the
@@ -84,8 +92,9 @@ and is reported as "about".
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 from scipy import special
@@ -433,19 +442,101 @@ def _nanmax(values: np.ndarray) -> float:
 
 def _run_outcome(groups: list[GroupVerdict]) -> tuple[str, float]:
     """The run's outcome from its groups', and the seeds that would settle an inconclusive run."""
-    judged = [g for g in groups if g.verdict != NOT_JUDGED]
+    return combine_verdicts(groups)
+
+
+def combine_verdicts(items: Sequence[Any]) -> tuple[str, float]:
+    """One outcome from several (groups, landmarks), and the seeds that would settle it if inconclusive.
+
+    Each item has ``verdict``, ``worst_ratio`` (|m| / delta at its worst) and ``seeds_needed``.
+    Agree when every judged item agrees, disagree when one disagrees, inconclusive otherwise.
+    """
+    judged = [g for g in items if g.verdict != NOT_JUDGED]
     if not judged:
         return NOT_JUDGED, math.nan
     if any(g.verdict == DISAGREE for g in judged):
         return DISAGREE, math.nan
     if all(g.verdict == AGREE for g in judged):
         return AGREE, math.nan
-    open_groups = [g for g in judged if g.verdict == INCONCLUSIVE]
-    # One group shown to disagree settles the run; agreement needs every open group to agree.
-    leaning = [g.seeds_needed for g in open_groups if g.worst_ratio > 1.0]
+    open_items = [g for g in judged if g.verdict == INCONCLUSIVE]
+    # One item shown to disagree settles it; agreement needs every open item to agree.
+    leaning = [g.seeds_needed for g in open_items if g.worst_ratio > 1.0]
     if leaning:
         return INCONCLUSIVE, float(min(leaning))
-    return INCONCLUSIVE, float(max(g.seeds_needed for g in open_groups))
+    return INCONCLUSIVE, float(max(g.seeds_needed for g in open_items))
+
+
+class ScalarVerdict(NamedTuple):
+    """The verdict on one scalar quantity per seed (a landmark), module docstring "Scalars"."""
+
+    name: str
+    verdict: str
+    mean: float  # mean paired difference theory - simulation
+    sem: float
+    seeds: int  # seeds with a finite difference
+    delta: float  # the margin: margin x |the simulation's mean|
+    half_width: float  # c * sem (NaN: not judged)
+    reach: float  # (|m| + c se) / delta: <= 1 means agreement is shown
+    inner: float  # (|m| - c se) / delta: > 1 means disagreement is shown
+    worst_ratio: float  # |m| / delta
+    seeds_needed: float  # inconclusive only: about how many seeds would settle it (inf: none would)
+
+
+class ScalarJudgement(NamedTuple):
+    verdict: str
+    seeds_needed: float
+    band: Band
+    margin: Margin
+    items: list[ScalarVerdict]
+
+
+def judge_scalars(diff: np.ndarray, size: np.ndarray, names: Sequence[str], margin: Margin) -> ScalarJudgement:
+    """Judge per-seed paired differences ``diff`` [S, L] of L scalar quantities (module docstring).
+
+    ``size`` [L] is each quantity's simulated size (the mean over the seeds with a finite
+    difference); NaN in ``diff`` marks a seed where either side lacks the quantity. A quantity
+    is judged when at least two seeds have it and its size is finite and not zero.
+    """
+    diff = np.asarray(diff, np.float64)
+    size = np.asarray(size, np.float64)
+    mean, sem, n = mean_sem(diff)
+    delta = margin.margin * np.abs(size)
+    judged = (n >= 2) & np.isfinite(mean) & np.isfinite(delta) & (delta > 0)
+    band = band_factor(diff[:, None, :], sem[None, :], n[None, :], judged, margin.alpha)
+    # Below the bootstrap's seeds each quantity's Sidak factor takes its own degrees of freedom:
+    # the quantities' seeds differ (a decay rate measured in 4 seeds, an exit time in 60), and the
+    # Sidak inequality holds cell by cell, so one quantity's few seeds need not widen every band.
+    bands = [band._replace(factor=max(_sidak_factor(margin.alpha, band.cells, int(n[i])),
+                                      _pointwise_factor(margin.alpha, int(n[i]))), seeds=int(n[i]))
+             if band.method == "sidak" and judged[i] else band for i in range(len(names))]
+    half_width = np.where(judged, np.array([b.factor for b in bands]) * np.where(sem > 0, sem, 0.0), np.nan)
+    items = []
+    for i, name in enumerate(names):
+        if not judged[i]:
+            items.append(ScalarVerdict(name, NOT_JUDGED, float(mean[i]), float(sem[i]), int(n[i]), float(delta[i]),
+                                       *([math.nan] * 5)))
+            continue
+        verdict = _outcome(mean[i : i + 1], half_width[i : i + 1], delta[i : i + 1])
+        # each quantity's own seeds (they differ from landmark to landmark), not the band's fewest
+        needed = _seeds_needed(mean[i : i + 1], sem[i : i + 1], delta[i : i + 1], bands[i], int(n[i])) \
+            if verdict == INCONCLUSIVE else math.nan
+        items.append(ScalarVerdict(
+            name, verdict, float(mean[i]), float(sem[i]), int(n[i]), float(delta[i]), float(half_width[i]),
+            float((abs(mean[i]) + half_width[i]) / delta[i]), float((abs(mean[i]) - half_width[i]) / delta[i]),
+            float(abs(mean[i]) / delta[i]), needed,
+        ))
+    verdict, needed = combine_verdicts(items)
+    return ScalarJudgement(verdict, needed, band, margin, items)
+
+
+def pointwise_interval(values: np.ndarray, alpha: float) -> tuple[float, float, float, float, int]:
+    """(mean, sem, low, high, n) of the finite ``values`` [S]: the pointwise 1 - alpha Student-t interval.
+
+    For showing one side's spread (a figure's error bar); verdicts use the simultaneous band.
+    """
+    mean, sem, n = mean_sem(np.asarray(values, np.float64))
+    half = _pointwise_factor(alpha, int(n)) * float(sem) if n >= 2 else math.nan
+    return float(mean), float(sem), float(mean) - half, float(mean) + half, int(n)
 
 
 def judge(traj, margin: Margin) -> Judgement:

@@ -47,17 +47,45 @@ or left only inside the last stretch) has no asymptotic decay rate (NaN).
 Crossing times are interpolated linearly in ln t between the two evaluations that bracket them.
 :func:`sampling_warning` says when those brackets, the plateau or the last stretch hold too few
 evaluations to trust the numbers.
+
+The scenario's ``[landmarks]`` table
+-----------------------------------
+Every threshold above is a key of ``[landmarks]`` with the default of :class:`LandmarkSettings`,
+plus ``error`` (which curve's landmarks: ``test_error``, the measured error, or
+``overlap_error``, the Gaussian formula on the order parameters) and ``judged`` (which landmarks
+are held against the theory, harness.results.paired_landmarks). Measuring landmarks changes no
+computation, so the section is a judging section (harness.core.scenario.JUDGING_SECTIONS): it is
+not part of the run_id, and a stored run is measured again when these keys change.
 """
 
 from __future__ import annotations
 
+import math
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, fields
-from typing import NamedTuple
+from typing import Any, NamedTuple
 
 import numpy as np
 
+from harness.core import keys as k
+from harness.core.keys import Key
+from harness.core.scenario import declare_keys
 from harness.core.trajectories import observable_group
+from harness.results import judgement as _judgement  # noqa: F401  declares [agreement], which [landmarks] follows
+
+LANDMARKS: dict[str, str] = {
+    "plateau_entry": "time the plateau begins",
+    "plateau_height": "error on the plateau (median over it)",
+    "plateau_exit": "time the error falls to (1 - exit_fraction) x the plateau height",
+    "specialisation": "time the spread of R across student units rises through specialisation_threshold",
+    "final_error": "error at the last evaluation",
+    "decay_rate": "rate of the exponential decay over the last stretch (no label noise)",
+    "asymptotic_error": "mean error over the last stretch (label noise)",
+}
+"""The landmarks measured on every curve and held against the theory, with their meaning."""
+ERROR_CURVES: tuple[str, ...] = ("test_error", "overlap_error")
+"""The curves whose landmarks can be measured."""
 
 
 @dataclass(frozen=True)
@@ -95,6 +123,60 @@ class LandmarkSettings:
                 raise ValueError(f"LandmarkSettings.{name} = {getattr(self, name)!r}: must be < 1")
         if self.plateau_min_span <= 1 or self.max_bracket_ratio <= 1:
             raise ValueError("LandmarkSettings.plateau_min_span and max_bracket_ratio must be > 1")
+
+
+    @classmethod
+    def from_scenario(cls, scenario: Mapping[str, Any]) -> LandmarkSettings:
+        """The settings of a scenario's ``[landmarks]`` table (a resolved scenario or a plain table;
+        keys it lacks take their defaults)."""
+        section = scenario.get("landmarks", {}) if hasattr(scenario, "get") else {}
+        names = [field.name for field in fields(cls)]
+        return cls(**{name: section[name] for name in names if name in section})
+
+    def to_dict(self) -> dict[str, float]:
+        return {field.name: getattr(self, field.name) for field in fields(self)}
+
+
+def _open_unit_interval(value: float) -> str | None:
+    return None if 0.0 < value < 1.0 else "a number in (0, 1)"
+
+
+def _above_one(value: float) -> str | None:
+    return None if math.isfinite(value) and value > 1.0 else "a finite number > 1"
+
+
+_CHECKS: dict[str, k.Check] = {
+    "exit_fraction": _open_unit_interval,
+    "specialisation_threshold": _open_unit_interval,
+    "tail_fraction": _open_unit_interval,
+    "plateau_min_span": _above_one,
+    "max_bracket_ratio": _above_one,
+    "min_points": k.positive,
+}
+_KEY_DOCS: dict[str, str] = {
+    "plateau_slope": "largest |d ln eps / d ln t| on a plateau; also the fall that must precede it",
+    "slope_window": "half-width in ln t of the difference quotient for d ln eps / d ln t",
+    "plateau_min_span": "a plateau lasts at least this factor in t",
+    "exit_fraction": "the plateau is left when eps falls to (1 - exit_fraction) x its height",
+    "specialisation_threshold": "sigma_R (spread of R across student units, in [0, 1]) above which units are "
+                                "specialised",
+    "tail_fraction": "the last stretch (decay rate, asymptotic error) is t >= (1 - tail_fraction) t_end",
+    "error_floor": "errors at or below this are numerical noise: no slopes, no fits there",
+    "min_points": "fewest evaluations that resolve a plateau or a last stretch (else a warning)",
+    "max_bracket_ratio": "largest t_after / t_before around a crossing time (else a warning)",
+}
+KEYS: dict[str, Key] = {
+    "error": Key("str", "test_error", "the error curve whose landmarks are measured", k.one_of(*ERROR_CURVES)),
+    "judged": Key("str_list", list(LANDMARKS), "landmarks held against the theory (paired, with a verdict)",
+                  k.names_from(tuple(LANDMARKS))),
+    **{
+        field.name: Key("int" if field.type in ("int", int) else "float", field.default, _KEY_DOCS[field.name],
+                        _CHECKS.get(field.name, k.positive_finite))
+        for field in fields(LandmarkSettings)
+    },
+}
+"""The [landmarks] table: how landmarks are measured and which are judged (not part of the run_id)."""
+declare_keys("landmarks", KEYS)
 
 
 class Landmarks(NamedTuple):

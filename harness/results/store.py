@@ -9,6 +9,7 @@ concurrent writers (a sweep's points finishing together) never lose a row.
 from __future__ import annotations
 
 import fcntl
+import os
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
@@ -26,6 +27,9 @@ from harness.core.files import (
 
 RUN_FILES = ("scenario.toml", "manifest.json", "trajectories.parquet", "summary.parquet", "metrics.parquet")
 INDEX_NAME = "runs.parquet"
+LANDMARKS_NAME = "landmarks.parquet"
+KEPT_ON_REPLACE = ("figures",)
+"""What a run folder keeps when ``--force`` replaces its run (write_run_folder)."""
 
 
 def is_complete_run(folder: str | Path) -> bool:
@@ -45,11 +49,18 @@ def write_run_folder(
     metrics: pd.DataFrame,
     judgement: dict[str, Any] | None = None,
     replace: bool = False,
+    landmarks: pd.DataFrame | None = None,
 ) -> Path:
     """Write the files of a run and publish the folder ``out_dir/name`` atomically.
 
-    ``judgement.json`` (the verdict, harness.results.judgement) is derived from the trajectories and
-    can be rewritten later, so it is not one of the :data:`RUN_FILES` that make a run complete.
+    ``judgement.json`` (the verdict, harness.results.judgement) and ``landmarks.parquet`` (each
+    seed's landmarks, harness.results.paired_landmarks) are derived from the trajectories and can
+    be rewritten later, so they are not among the :data:`RUN_FILES` that make a run complete.
+    With ``replace`` the folder of an earlier run of the same name is replaced, except for its
+    ``figures/`` (:data:`KEPT_ON_REPLACE`): drawn by the user, perhaps at a chosen size, they
+    are kept, and marked stale by dating them a second before the new tables (a figure older
+    than its tables is what ``harness report`` redraws, harness.plot.report), so they are
+    redrawn even when the replacement came within the file system's clock resolution.
     """
     final = Path(out_dir) / name
     with staging_folder(out_dir, name) as staging:
@@ -60,8 +71,22 @@ def write_run_folder(
         atomic_write_json(staging / "manifest.json", manifest)
         if judgement is not None:
             atomic_write_json(staging / "judgement.json", judgement)
-        publish_folder(staging, final, replace=replace)
+        if landmarks is not None:
+            atomic_write_parquet(staging / LANDMARKS_NAME, landmarks)
+        publish_folder(staging, final, replace=replace, keep=KEPT_ON_REPLACE)
+    if replace:
+        _mark_stale(final)
     return final
+
+
+def _mark_stale(folder: Path) -> None:
+    """Date every kept figure a second before the run's summary table (see write_run_folder)."""
+    tables = (folder / "summary.parquet").stat().st_mtime
+    for kept in KEPT_ON_REPLACE:
+        for path in (folder / kept).rglob("*") if (folder / kept).is_dir() else ():
+            if path.is_file():
+                status = path.stat()
+                os.utime(path, (status.st_atime, min(status.st_mtime, tables - 1.0)))
 
 
 @contextmanager

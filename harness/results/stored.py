@@ -19,15 +19,19 @@ from harness.core.files import strict_json_value
 from harness.core.trajectories import Trajectories, from_frame
 from harness.results import comparison
 from harness.results.judgement import Margin
+from harness.results.paired_landmarks import LandmarkOptions
 
 
 def judgement_record(comp: comparison.Comparison) -> dict[str, Any]:
-    """What ``judgement.json`` holds: the verdict, its settings and band, the groups and the gaps.
+    """What ``judgement.json`` holds: the verdict, its settings and band, the groups, the gaps and the landmarks.
 
     Non-finite numbers are None, as in the file (strict JSON): a ``seeds_needed`` of None
     means "no number of seeds would settle it" where the verdict is inconclusive.
     """
-    return strict_json_value({**comp.judgement.to_dict(), "gaps": comp.gaps})
+    record = {**comp.judgement.to_dict(), "gaps": comp.gaps}
+    if comp.landmarks is not None:
+        record["landmarks"] = comp.landmarks.to_dict()  # harness.results.paired_landmarks
+    return strict_json_value(record)
 
 
 def read_judgement(folder: Path) -> dict[str, Any] | None:
@@ -47,7 +51,8 @@ def read_judgement(folder: Path) -> dict[str, Any] | None:
         else {}
     margin = Margin.from_scenario(table)
     traj = from_frame(pd.read_parquet(Path(folder) / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
-    return judgement_record(comparison.compare(traj, margin, divergence_times(traj, manifest)))
+    return judgement_record(comparison.compare(traj, margin, divergence_times(traj, manifest),
+                                               LandmarkOptions.from_scenario(table)))
 
 
 def divergence_times(traj: Trajectories, manifest: dict[str, Any]) -> np.ndarray:

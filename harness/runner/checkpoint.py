@@ -47,8 +47,20 @@ def checkpoint_folder(out_dir: str | Path, run_id: str) -> Path:
 
 
 def discard_checkpoint(folder: str | Path) -> None:
-    """Remove a run's checkpoint folder (after its results are stored)."""
+    """Remove a run's checkpoint folder (after its results are stored), and ``.checkpoints/`` once empty.
+
+    The shared ``DIR/.checkpoints/`` goes with the last run's folder, so a finished run
+    leaves nothing behind. ``os.rmdir`` removes only an empty folder, so the checkpoints of
+    runs still going on (other points of a sweep) stay; a writer that creates its folder at
+    the very moment the empty parent is removed fails to save once, warns and goes on
+    without checkpoints (Checkpointer.save).
+    """
+    folder = Path(folder)
     shutil.rmtree(folder, ignore_errors=True)
+    try:
+        folder.parent.rmdir()
+    except OSError:  # not empty (other runs' checkpoints) or already gone
+        pass
 
 
 class Restored(NamedTuple):

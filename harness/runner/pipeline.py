@@ -24,9 +24,9 @@ from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
 from harness.core.files import atomic_write_json, atomic_write_parquet, atomic_write_text
 from harness.core.trajectories import Trajectories, from_frame, observable_names
-from harness.results import comparison
+from harness.results import comparison, paired_landmarks
 from harness.results.judgement import Margin
-from harness.results.store import append_index_row, is_complete_run, write_run_folder
+from harness.results.store import LANDMARKS_NAME, append_index_row, is_complete_run, write_run_folder
 from harness.results.stored import divergence_times, judgement_record
 from harness.runner.checkpoint import checkpoint_folder, discard_checkpoint
 from harness.runner.experiment import ProgressFn, SolveProgress, run_experiment, theory_only, theory_timings
@@ -96,6 +96,7 @@ def index_row(
         if gap is not None:
             row[f"{name}.verdict"] = gap["verdict"]
             row[f"{name}.relative"] = float(gap["relative"])
+    row.update(paired_landmarks.index_columns(comp.landmarks))
     return row
 
 
@@ -110,6 +111,7 @@ class ComputedRun(NamedTuple):
     metrics: pd.DataFrame
     judgement: dict[str, Any]
     index_row: dict[str, Any]
+    landmarks: pd.DataFrame | None = None  # landmarks.parquet (harness.results.paired_landmarks)
 
 
 def compute_run(
@@ -154,7 +156,8 @@ def computed_run(
     """Judge trajectories and assemble every file of their run (``kind`` "run" or "theory")."""
     run_id = scenario_lib.run_id(scenario) + ("-theory" if kind == "theory" else "")
     diverged_at = np.full(len(traj.seeds), np.nan) if diverged_at is None else np.asarray(diverged_at)
-    comp = comparison.compare(traj, Margin.from_scenario(scenario), diverged_at)
+    comp = comparison.compare(traj, Margin.from_scenario(scenario), diverged_at,
+                              paired_landmarks.LandmarkOptions.from_scenario(scenario))
     diverged = [
         {"seed": int(s), "t": float(t)} for s, t in zip(traj.seeds, diverged_at, strict=True) if np.isfinite(t)
     ]
@@ -173,6 +176,7 @@ def computed_run(
     return ComputedRun(
         run_id, scenario_lib.to_toml(scenario), manifest, traj.to_frame(), comp.summary, comp.metrics,
         judgement_record(comp), index_row(run_id, scenario, comp, kind=kind),
+        comp.landmarks.frame() if comp.landmarks is not None else None,
     )
 
 
@@ -187,7 +191,7 @@ def store_run(computed: ComputedRun, out_dir: str | Path, *, force: bool = False
             out_dir, computed.run_id,
             scenario_toml=computed.scenario_toml, manifest=computed.manifest,
             trajectories=computed.trajectories, summary=computed.summary, metrics=computed.metrics,
-            judgement=computed.judgement, replace=force,
+            judgement=computed.judgement, replace=force, landmarks=computed.landmarks,
         )
         append_index_row(out_dir, computed.index_row)
         discard_checkpoint(checkpoint_folder(out_dir, computed.run_id))
@@ -300,23 +304,27 @@ def _warn_if_start_moved(folder: Path, stored_start: np.ndarray, start: np.ndarr
 
 
 def judge_stored_run(folder: Path, scenario: scenario_lib.Scenario, out_dir: str | Path) -> StoredRun:
-    """A complete stored run, judged with ``scenario``'s ``[agreement]`` settings.
+    """A complete stored run, judged with ``scenario``'s ``[agreement]`` and ``[landmarks]`` settings.
 
     Judging changes no computation (the settings are not part of the run_id), so a run
-    stored under other settings, or before judgement.json existed, is judged again from its
-    stored trajectories; its summary, metrics, judgement, scenario copy and index row are
-    rewritten atomically. Otherwise the stored files are read back as they are.
+    stored under other settings, or before judgement.json (or its landmarks) existed, is judged
+    again from its stored trajectories; its summary, metrics, judgement, landmarks, scenario copy
+    and index row are rewritten atomically. Otherwise the stored files are read back as they are.
     """
     manifest = json.loads((folder / "manifest.json").read_text())
     stored_judgement = folder / "judgement.json"
     margin = Margin.from_scenario(scenario)
+    landmark_options = paired_landmarks.LandmarkOptions.from_scenario(scenario)
     if stored_judgement.is_file():
         record = json.loads(stored_judgement.read_text())
-        if Margin(record["margin"], record["floor"], record["alpha"]) == margin:
+        if Margin(record["margin"], record["floor"], record["alpha"]) == margin \
+                and paired_landmarks.is_current(record, landmark_options):
             return StoredRun(folder.name, folder, True, pd.read_parquet(folder / "metrics.parquet"), manifest, record)
     traj = from_frame(pd.read_parquet(folder / "trajectories.parquet"), paired=bool(manifest.get("paired", True)))
-    comp = comparison.compare(traj, margin, divergence_times(traj, manifest))
+    comp = comparison.compare(traj, margin, divergence_times(traj, manifest), landmark_options)
     record = judgement_record(comp)
+    if comp.landmarks is not None:
+        atomic_write_parquet(folder / LANDMARKS_NAME, comp.landmarks.frame())
     atomic_write_parquet(folder / "summary.parquet", comp.summary)
     atomic_write_parquet(folder / "metrics.parquet", comp.metrics)
     atomic_write_json(folder / "judgement.json", record)

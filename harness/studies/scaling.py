@@ -3,7 +3,9 @@
 ``harness scale SCENARIO --sizes 250,500,1000,2000`` runs the scenario at each input size
 N (everything else equal; each size is an ordinary stored run, reused when complete),
 measures a gap between simulation and theory at each N, fits gap(N) = a N^-b + c and
-decides whether the offset c (the gap left at N -> infinity) is zero.
+decides whether the offset c (the gap left at N -> infinity) is zero. With ``--observable
+landmark:NAME`` the question is a landmark's law of growth instead (the escape time growing like
+ln N), answered by harness.studies.landmark_scaling on the same stored runs.
 
 The gap and why it is built this way
 ------------------------------------
@@ -146,8 +148,15 @@ import numpy as np
 
 from harness.core import scenario as scenario_lib
 from harness.core.errors import InputError
-from harness.results.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED
+from harness.results.judgement import AGREE, DISAGREE, INCONCLUSIVE, NOT_JUDGED, Margin
 from harness.results.judgement import EXIT_STATUS as VERDICT_EXIT_STATUS
+from harness.studies.landmark_scaling import (
+    LANDMARK_PREFIX,
+    check_observable,
+    format_landmark_verdict,
+    landmark_name,
+    landmark_scaling,
+)
 
 DEFAULT_OBSERVABLE = "test_error"
 DEFAULT_RESOLUTION = 0.05
@@ -619,6 +628,23 @@ def _seed_factor(chi2_zero: float, chi2_tolerance: float, fit: ScalingFit, toler
     return target, factor
 
 
+class _Trend(NamedTuple):
+    """How the squared gap moves from the smallest to the largest size."""
+
+    first: int
+    last: int
+    rise: float  # U(largest N) - U(smallest N)
+    rise_err: float
+
+    @property
+    def rising(self) -> bool:
+        return self.rise > 2.0 * self.rise_err
+
+    @property
+    def falling(self) -> bool:
+        return -self.rise > 2.0 * self.rise_err
+
+
 def decide(
     gaps: Sequence[SizeGap], fit: ScalingFit, tolerance: float, *, seeds: int, shrink: ShrinkTest | None = None
 ) -> Verdict:
@@ -627,12 +653,26 @@ def decide(
     u = np.array([g.squared_gap for g in gaps])
     u_err = np.array([g.squared_gap_err for g in gaps])
     first, last = 0, int(np.argmax(sizes))
-    rise = u[last] - u[first]
-    rise_err = math.hypot(u_err[last], u_err[first])
-    rising = rise > 2.0 * rise_err
-    law_fits = not (fit.dof > 0 and fit.p_value < MIN_FIT_P_VALUE)  # reported; errors already inflated
-    z0 = fit.offset_significance
+    trend = _Trend(first, last, float(u[last] - u[first]), math.hypot(u_err[last], u_err[first]))
+    settled = _settled(sizes, u, u_err, fit, tolerance, shrink, trend)
+    if settled is not None:
+        return settled
+    reasons = _open_reasons(sizes, fit, tolerance, shrink, trend)
+    advice, forecast = _forecast(sizes, u_err, fit, tolerance, seeds, trend.rising)
+    return Verdict("inconclusive", "; ".join(reasons) or "not enough resolution", advice, forecast)
 
+
+def _suspicious(shrink: ShrinkTest | None) -> bool:
+    """The paired shrink test leans against a finite-size gap (two sigma), without showing it flat."""
+    return shrink is not None and shrink.excess >= Z_COMPATIBLE and shrink.large_significance >= Z_COMPATIBLE
+
+
+def _settled(
+    sizes: np.ndarray, u: np.ndarray, u_err: np.ndarray, fit: ScalingFit, tolerance: float,
+    shrink: ShrinkTest | None, trend: _Trend,
+) -> Verdict | None:
+    """The rule's decisive outcomes, inconsistent or consistent (None: neither is shown)."""
+    z0 = fit.offset_significance
     if shrink is not None and shrink.flat:
         return Verdict(
             "inconsistent",
@@ -650,24 +690,31 @@ def decide(
             "the gap does not vanish as N grows",
             [], {},
         )
-    suspicious = shrink is not None and shrink.excess >= Z_COMPATIBLE and shrink.large_significance >= Z_COMPATIBLE
-    if z0 < Z_COMPATIBLE and fit.offset_upper <= tolerance and not rising and not suspicious:
-        if -rise > 2.0 * rise_err:
-            trend = (
-                f"the gap falls from {math.sqrt(max(u[first], 0)):.3g} at N = {int(sizes[first])} "
-                f"to {math.sqrt(max(u[last], 0)):.3g} at N = {int(sizes[last])} ({-rise / rise_err:.1f} sigma)"
-            )
-        elif np.all(u < 2.0 * u_err):
-            trend = "no size shows a gap beyond its noise, so the decay itself is not resolved"
-        else:
-            trend = "the gap does not rise with N"
-        return Verdict(
-            "consistent",
-            f"offset c = {fit.offset:.3g} is compatible with zero ({z0:.1f} sigma) and below "
-            f"{fit.offset_upper:.3g} at two sigma, within the tolerance {tolerance:.3g}; {trend}",
-            [], {"gap_falls": bool(-rise > 2.0 * rise_err)},
+    if not (z0 < Z_COMPATIBLE and fit.offset_upper <= tolerance and not trend.rising and not _suspicious(shrink)):
+        return None
+    first, last = trend.first, trend.last
+    if trend.falling:
+        how = (
+            f"the gap falls from {math.sqrt(max(u[first], 0)):.3g} at N = {int(sizes[first])} "
+            f"to {math.sqrt(max(u[last], 0)):.3g} at N = {int(sizes[last])} ({-trend.rise / trend.rise_err:.1f} sigma)"
         )
+    elif np.all(u < 2.0 * u_err):
+        how = "no size shows a gap beyond its noise, so the decay itself is not resolved"
+    else:
+        how = "the gap does not rise with N"
+    return Verdict(
+        "consistent",
+        f"offset c = {fit.offset:.3g} is compatible with zero ({z0:.1f} sigma) and below "
+        f"{fit.offset_upper:.3g} at two sigma, within the tolerance {tolerance:.3g}; {how}",
+        [], {"gap_falls": trend.falling},
+    )
 
+
+def _open_reasons(
+    sizes: np.ndarray, fit: ScalingFit, tolerance: float, shrink: ShrinkTest | None, trend: _Trend
+) -> list[str]:
+    """Why neither outcome is shown, in words."""
+    z0 = fit.offset_significance
     reasons = []
     if Z_COMPATIBLE <= z0:
         reasons.append(
@@ -678,24 +725,29 @@ def decide(
             f"offset compatible with zero but only bounded by {fit.offset_upper:.3g} (two sigma), "
             f"above the tolerance {tolerance:.3g}"
         )
-    if suspicious:
+    if _suspicious(shrink):
         reasons.append(
             f"the squared gap of the same seeds falls from N = {shrink.small} to N = {shrink.large} only by a "
             f"factor {shrink.ratio:.3g} +- {shrink.ratio_err:.2g} ({shrink.excess:.1f} sigma above the "
             f"{shrink.bound:.3g} a finite-size gap allows)"
         )
-    if rising:
+    if trend.rising:
         reasons.append(
-            f"the squared gap rises from N = {int(sizes[first])} to N = {int(sizes[last])} "
-            f"({rise / rise_err:.1f} sigma)"
+            f"the squared gap rises from N = {int(sizes[trend.first])} to N = {int(sizes[trend.last])} "
+            f"({trend.rise / trend.rise_err:.1f} sigma)"
         )
-    if not law_fits:
+    if fit.dof > 0 and fit.p_value < MIN_FIT_P_VALUE:  # reported; the errors are already inflated
         reasons.append(
             f"a N^-b + c describes the gaps poorly (chi^2 = {fit.chi2:.1f} for {fit.dof} dof; "
             f"errors inflated by {fit.scale_factor:.2g})"
         )
+    return reasons
 
-    # Asimov forecast: the fitted law as truth, errors scaled down.
+
+def _forecast(
+    sizes: np.ndarray, u_err: np.ndarray, fit: ScalingFit, tolerance: float, seeds: int, rising: bool
+) -> tuple[list[str], dict[str, Any]]:
+    """The Asimov forecast of the module docstring: the fitted law as truth, errors scaled down."""
     chi2_zero, chi2_tolerance = _asimov_chi2(sizes, u_err, fit, [0.0, tolerance])
     target, factor = _seed_factor(chi2_zero, chi2_tolerance, fit, tolerance)
     advice: list[str] = []
@@ -741,7 +793,7 @@ def decide(
         )
     if not advice:
         advice.append("the forecast finds no affordable setting that decides: check the observable and the time range")
-    return Verdict("inconclusive", "; ".join(reasons) or "not enough resolution", advice, forecast)
+    return advice, forecast
 
 
 # ------------------------------------------------------------------------ the command
@@ -790,39 +842,34 @@ def validate(
     names = observable_names(
         scenario.student.hidden, scenario.teacher.hidden, scenario.student.train_second_layer
     )
-    if observable not in names:
-        raise InputError(f"--observable: must be one of {', '.join(names)}; got {observable!r}")
+    if observable.startswith(LANDMARK_PREFIX):
+        check_observable(observable)
+    elif observable not in names:
+        raise InputError(f"--observable: must be one of {', '.join(names)}, or landmark:NAME; got {observable!r}")
     return [scenario_lib.with_overrides(scenario, {"data.input_dim": n}) for n in sizes]
 
 
-def run_scaling(
-    scenario: dict,
-    sizes: Sequence[int],
-    out_dir: str | Path,
-    *,
-    observable: str = DEFAULT_OBSERVABLE,
-    resolution: float = DEFAULT_RESOLUTION,
-    min_exponent: float = EXPONENT_BOUNDS[0],
-    force: bool = False,
-    log: Any = None,
-    show_progress: bool = True,
-) -> dict[str, Any]:
-    """Run (or reuse) every size, measure the gaps, fit, decide, write verdict.json; return it."""
+class SizeRun(NamedTuple):
+    """One size's stored run, as the scaling reads it."""
+
+    size: int
+    run_id: str
+    verdict: str  # the run's own verdict (harness.results.judgement)
+    folder: Path
+    trajectories: Any  # harness.core.trajectories.Trajectories
+
+
+def run_sizes(
+    per_size: Sequence[Any], sizes: Sequence[int], out_dir: Path, *, force: bool, log: Any, show_progress: bool
+) -> list[SizeRun]:
+    """Run (or reuse) every size's scenario as an ordinary stored run, in order of size."""
     import pandas as pd
 
-    from harness.core.files import atomic_write_json
     from harness.core.trajectories import from_frame
-    from harness.results.store import append_index_row
     from harness.runner.pipeline import run_and_store
     from harness.runner.progress import Progress
 
-    log = log or sys.stderr
-    sizes = sorted(sizes)
-    per_size = validate(scenario, sizes, observable, resolution, min_exponent)
-    identifier = scale_id(scenario, sizes, observable, resolution, min_exponent)
-    out_dir = Path(out_dir)
-
-    trajectories, run_ids, run_verdicts = [], [], []
+    runs = []
     for index, (size, size_scenario) in enumerate(zip(sizes, per_size, strict=True), start=1):
         log.write(f"scale: size {index}/{len(sizes)}, N = {size}\n")
         log.flush()
@@ -833,34 +880,44 @@ def run_scaling(
                 bar.update(done, f"step {done}/{total}")
 
             stored = run_and_store(size_scenario, out_dir, force=force, progress=report)
-        state = "reused" if stored.skipped else "done"
-        log.write(f"scale: N = {size}: run {stored.run_id} {state}\n")
-        run_ids.append(stored.run_id)
-        run_verdicts.append(stored.judgement["verdict"] if stored.judgement else NOT_JUDGED)
+        log.write(f"scale: N = {size}: run {stored.run_id} {'reused' if stored.skipped else 'done'}\n")
         frame = pd.read_parquet(stored.folder / "trajectories.parquet")
         paired = bool(json.loads((stored.folder / "manifest.json").read_text()).get("paired", True))
-        trajectories.append(from_frame(frame, paired=paired))
+        runs.append(SizeRun(int(size), stored.run_id, stored.judgement["verdict"] if stored.judgement else NOT_JUDGED,
+                            stored.folder, from_frame(frame, paired=paired)))
+    return runs
 
+
+def measure_gaps(runs: Sequence[SizeRun], observable: str) -> tuple[list[SizeGap], float]:
+    """Every size's gap on the time range all sizes cover, and the range's first time t_min."""
     # The gap is a mean over time: use the range every size covers (early grids can differ).
-    t_min = max(float(np.min(tr.t[tr.t > 0])) for tr in trajectories)
-    gaps = [gap_of_trajectories(tr, n, observable, t_min) for tr, n in zip(trajectories, sizes, strict=True)]
+    t_min = max(float(np.min(run.trajectories.t[run.trajectories.t > 0])) for run in runs)
+    gaps = [gap_of_trajectories(run.trajectories, run.size, observable, t_min) for run in runs]
     for g in gaps:
         if not (g.squared_gap_err > 0):
             raise InputError(
                 f"scale: the gap at N = {g.size} has no measurable spread across seeds "
                 f"(is {observable} constant?); choose another --observable"
             )
+    return gaps, t_min
+
+
+def gap_scaling(
+    runs: Sequence[SizeRun], observable: str, resolution: float, min_exponent: float
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """Measure, fit and decide the gap's scaling: the verdict record and the run index's columns."""
+    sizes = [run.size for run in runs]
+    gaps, t_min = measure_gaps(runs, observable)
     fit = fit_scaling(
         sizes, [g.squared_gap for g in gaps], [g.squared_gap_err for g in gaps],
         exponent_bounds=(min_exponent, EXPONENT_BOUNDS[1]),
     )
     tolerance = resolution * gaps[-1].scale
     seeds = min(g.seeds_used for g in gaps)
-    shrink = paired_shrink_test(trajectories[0], trajectories[-1], sizes[0], sizes[-1], observable, t_min,
+    shrink = paired_shrink_test(runs[0].trajectories, runs[-1].trajectories, sizes[0], sizes[-1], observable, t_min,
                                 min_exponent)
     decision = decide(gaps, fit, tolerance, seeds=seeds, shrink=shrink)
-
-    verdict = {
+    record = {
         "verdict": decision.verdict,
         "reason": decision.reason,
         "advice": decision.advice,
@@ -893,35 +950,79 @@ def run_scaling(
         "scales": [g.scale for g in gaps],
         "seeds_used": [g.seeds_used for g in gaps],
         "t_min": t_min,
-        "run_ids": run_ids,
         "forecast": decision.forecast,
         "exponent_fitted": fit.exponent_fitted,
         "shrink": None if shrink is None else {**shrink._asdict(), "flat": shrink.flat},
-        "run_verdicts": run_verdicts,
+    }
+    columns = {
+        "scale.offset": fit.offset,
+        "scale.offset_err": fit.offset_err,
+        "scale.offset_significance": fit.offset_significance,
+        "scale.exponent": fit.exponent,
+        "scale.exponent_err": fit.exponent_err,
+    }
+    return record, columns
+
+
+def record_verdict(
+    out_dir: Path, identifier: str, scenario: Any, runs: Sequence[SizeRun], observable: str,
+    record: dict[str, Any], columns: dict[str, Any],
+) -> dict[str, Any]:
+    """Write ``out_dir/<scale_id>/verdict.json`` and the scaling's row of runs.parquet; return the record."""
+    from harness.core.files import atomic_write_json
+    from harness.results.store import append_index_row
+
+    verdict = {
+        **record,
+        "run_ids": [run.run_id for run in runs],
+        "run_verdicts": [run.verdict for run in runs],
         "scale_id": identifier,
         "scenario": scenario_lib.to_dict(scenario),
     }
     atomic_write_json(out_dir / identifier / "verdict.json", verdict)
     row: dict[str, Any] = {"run_id": identifier, "kind": "scale"}
     row.update(scenario_lib.flatten(scenario))
-    row.update(
-        {
-            "scale.verdict": decision.verdict,
-            "scale.sizes": json.dumps(sizes),
-            "scale.observable": observable,
-            "scale.offset": fit.offset,
-            "scale.offset_err": fit.offset_err,
-            "scale.offset_significance": fit.offset_significance,
-            "scale.exponent": fit.exponent,
-            "scale.exponent_err": fit.exponent_err,
-        }
-    )
+    row.update({
+        "scale.verdict": verdict["verdict"],
+        "scale.sizes": json.dumps([run.size for run in runs]),
+        "scale.observable": observable,
+        **columns,
+    })
     append_index_row(out_dir, row)
     return verdict
 
 
+def run_scaling(
+    scenario: dict,
+    sizes: Sequence[int],
+    out_dir: str | Path,
+    *,
+    observable: str = DEFAULT_OBSERVABLE,
+    resolution: float = DEFAULT_RESOLUTION,
+    min_exponent: float = EXPONENT_BOUNDS[0],
+    force: bool = False,
+    log: Any = None,
+    show_progress: bool = True,
+) -> dict[str, Any]:
+    """Run (or reuse) every size, measure the gaps, fit, decide, write verdict.json; return it."""
+    log = log or sys.stderr
+    sizes = sorted(sizes)
+    per_size = validate(scenario, sizes, observable, resolution, min_exponent)
+    identifier = scale_id(scenario, sizes, observable, resolution, min_exponent)
+    out_dir = Path(out_dir)
+    runs = run_sizes(per_size, sizes, out_dir, force=force, log=log, show_progress=show_progress)
+    landmark = landmark_name(observable)
+    if landmark is not None:  # the law of growth of a landmark (harness.studies.landmark_scaling)
+        record, columns = landmark_scaling(runs, landmark, Margin.from_scenario(scenario), min_exponent)
+    else:
+        record, columns = gap_scaling(runs, observable, resolution, min_exponent)
+    return record_verdict(out_dir, identifier, scenario, runs, observable, record, columns)
+
+
 def format_verdict(verdict: dict[str, Any]) -> str:
     """The closing lines of ``harness scale``: per-size gaps, the fit and the verdict."""
+    if verdict.get("kind") == "landmark":
+        return format_landmark_verdict(verdict)
     lines = [f"finite-size scaling of {verdict['observable']} -> {verdict['scale_id']}"]
     lines.append(
         f"  {'N':>7}  {'gap':>10}  {'-err':>8}  {'+err':>8}  {'squared gap U':>14}  {'+-':>8}  "
