@@ -24,9 +24,9 @@ from harness.cli.main import main
 from harness.core import scenario as scenario_lib
 from harness.core.files import nulls_as_nan
 from harness.results.store import INDEX_NAME, RUN_FILES, read_index
-from harness.runner import pipeline
+from harness.runner import experiment, pipeline
 from harness.runner.checkpoint import FILE_NAME as CHECKPOINT_FILE
-from harness.runner.checkpoint import checkpoint_folder
+from harness.runner.checkpoint import FINISHED_NAME, checkpoint_folder
 from harness.studies import sweep
 
 REPO = Path(__file__).resolve().parents[1]
@@ -163,12 +163,19 @@ def test_a_run_and_a_theory_run_round_trip_through_their_files(tmp_path):
     row = read_index(out).set_index("run_id").loc[computed.run_id]
     same({k: v for k, v in computed.index_row.items() if k != "run_id"}, row.to_dict(), "runs.parquet")
 
-    # The theory alone: its simulation columns are NaN, which Parquet keeps as NaN.
-    theory = pipeline.theory_and_store(scenario, out)
+    # The theory alone, where no simulation is stored: its simulation columns are NaN, which
+    # Parquet keeps as NaN.
+    theory = pipeline.theory_and_store(scenario, tmp_path / "alone")
     for name in ("trajectories", "summary"):
         frame = pd.read_parquet(theory.folder / f"{name}.parquet")
         assert frame[[c for c in frame.columns if c.startswith("sim")]].isna().all().all()
     same(theory.manifest, nulls_as_nan(strict_json((theory.folder / "manifest.json").read_text())), "theory")
+
+    # Beside the stored run, the theory run is paired with that run's simulation.
+    paired = pipeline.theory_and_store(scenario, out)
+    frame = pd.read_parquet(paired.folder / "trajectories.parquet")
+    pd.testing.assert_series_equal(frame["sim"], computed.trajectories["sim"])
+    same(paired.manifest, nulls_as_nan(strict_json((paired.folder / "manifest.json").read_text())), "paired")
 
 
 def test_a_set_aside_index_row_is_strict_and_restores_nan_metrics(tmp_path, monkeypatch):
@@ -200,17 +207,27 @@ def test_a_set_aside_index_row_is_strict_and_restores_nan_metrics(tmp_path, monk
             assert index[key].dtype == np.float64, key
 
 
-def test_checkpoint_metadata_is_strict_json(tmp_path):
+def test_checkpoint_metadata_is_strict_json(tmp_path, monkeypatch):
     scenario = scenario_lib.with_overrides(
         scenario_lib.load(real_results().scenario_file), {"run.checkpoint_minutes": 1e-9}  # save at every chance
     )
     folder = tmp_path / "checkpoints"
-    with umask(0o022):
+    with umask(0o022), monkeypatch.context() as patch:
+        # a finished simulation replaces the mid-run checkpoint: keep the latter to read it
+        patch.setattr(experiment, "save_finished", lambda *args, **kwargs: None)
         pipeline.compute_run(scenario, checkpoint_dir=folder)
     path = folder / CHECKPOINT_FILE
     with np.load(path, allow_pickle=False) as saved:
         meta = strict_json(saved["meta"].tobytes().decode("utf-8"))
     assert meta["run_id"] == scenario_lib.run_id(scenario) and meta["evaluations_done"] >= 1
+    assert stat.S_IMODE(path.stat().st_mode) == 0o644
+
+    with umask(0o022):
+        pipeline.compute_run(scenario, checkpoint_dir=folder)  # resumes, finishes, keeps the finished simulation
+    path = folder / FINISHED_NAME
+    with np.load(path, allow_pickle=False) as saved:
+        meta = strict_json(saved["meta"].tobytes().decode("utf-8"))
+    assert meta["run_id"] == scenario_lib.run_id(scenario) and not (folder / CHECKPOINT_FILE).exists()
     assert stat.S_IMODE(path.stat().st_mode) == 0o644
 
 

@@ -112,11 +112,12 @@ def test_a_theory_given_as_a_function(tmp_path):
     calls = []
 
     def constant_error(scenario, start, times):
-        calls.append(len(start.seeds))
+        calls.append((len(start.seeds), len(times)))
         return {"test_error": np.full(len(times), 0.25)}
 
     result = harness.run(TINY, theory=constant_error)
-    assert calls == [3]
+    # asked once for two times before simulating (a broken theory is refused at once), then for all
+    assert calls == [(3, 2), (3, result.scenario.run.evaluations)]
     assert result.scenario.theory.source.endswith("constant_error")
     theory = result.arrays().theory
     assert np.all(theory[:, :, 0] == 0.25) and np.all(np.isnan(theory[:, :, 2]))
