@@ -131,7 +131,7 @@ def _interrupt_line(lines: list[str]) -> str:
 def test_ctrl_c_in_the_simulation_and_in_the_theory_exits_fast_and_a_rerun_goes_on(tmp_path):
     scenario_file = tmp_path / "scenario.toml"
     scenario_file.write_text(
-        "[data]\ninput_dim = 200\n[sgd]\ntime = 3000.0\n[run]\nseeds = 2\ntest_samples = 200\n"
+        "[data]\ninput_dim = 200\n[sgd]\ntime = 1000.0\n[run]\nseeds = 2\ntest_samples = 200\n"
         '[theory]\nsource = "python:interrupt_theory:predict"\n'
     )
     out = tmp_path / "results"
@@ -166,5 +166,5 @@ def test_ctrl_c_in_the_simulation_and_in_the_theory_exits_fast_and_a_rerun_goes_
     assert process.returncode in (0, 1, 3), "".join(lines)
     assert not any(line.startswith("simulating") for line in lines), lines
     manifest = json.loads((out / run_id / "manifest.json").read_text())
-    assert manifest["resumed_from_step"] == round(3000.0 * 200)
+    assert manifest["resumed_from_step"] == round(1000.0 * 200)
     assert not kept.exists()

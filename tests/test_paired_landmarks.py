@@ -46,6 +46,18 @@ def test_landmark_verdict_by_hand():
     assert verdict.band.method == "sidak" and verdict.band.cells == 3
 
 
+def test_an_error_decayed_to_rounding_level_is_judged_against_its_curves_floor():
+    # A noiseless run to t = 1000 (measured): every simulated seed's final error ~1e-13, the
+    # theory's ~2.3e-8 (the solver's tolerance). 5 % of 1e-13 would call that a disagreement; the
+    # curve's floor, 0.001 x its peak (0.3 here), is 3e-4, far above both.
+    diff = np.array([[2.3e-8], [2.2e-8], [2.4e-8], [2.3e-8]])
+    size = np.array([1.5e-13])
+    margin = Margin(0.05, 0.001, 0.05)
+    assert judgement.judge_scalars(diff, size, ["final_error"], margin).items[0].verdict == "disagree"
+    floored = judgement.judge_scalars(diff, size, ["final_error"], margin, np.array([0.001 * 0.3]))
+    assert floored.items[0].delta == pytest.approx(3e-4) and floored.items[0].verdict == "agree"
+
+
 def test_sign_test_is_mcnemars_exact_test():
     # Every discordant seed on one side: p = 2 / 2^8 (by hand); otherwise scipy's exact binomial test.
     assert sign_test(8, 0) == pytest.approx(2 * 0.5**8)

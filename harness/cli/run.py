@@ -140,7 +140,8 @@ def format_landmarks(record: dict) -> list[str]:
     lines.append(
         f"  (landmarks measured seed by seed on the {section['options']['error']} curve; theory - sim.: paired mean "
         f"± its {100 * (1 - section['alpha']):.3g} % simultaneous band, c = {_band_factors(rows)} "
-        f"({section['band_method']});\n   margin = {section['margin']:g} x the simulated landmark; "
+        f"({section['band_method']});\n   margin = {section['margin']:g} x the simulated landmark (an error at least "
+        f"{section.get('floor', 0.001):g} x its curve's largest); "
         "the landmark verdict does not change the run's, which is the curves')"
     )
     if section.get("sampling_warning"):

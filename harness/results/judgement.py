@@ -490,17 +490,24 @@ class ScalarJudgement(NamedTuple):
     items: list[ScalarVerdict]
 
 
-def judge_scalars(diff: np.ndarray, size: np.ndarray, names: Sequence[str], margin: Margin) -> ScalarJudgement:
+def judge_scalars(
+    diff: np.ndarray, size: np.ndarray, names: Sequence[str], margin: Margin, floor: np.ndarray | None = None
+) -> ScalarJudgement:
     """Judge per-seed paired differences ``diff`` [S, L] of L scalar quantities (module docstring).
 
     ``size`` [L] is each quantity's simulated size (the mean over the seeds with a finite
     difference); NaN in ``diff`` marks a seed where either side lacks the quantity. A quantity
-    is judged when at least two seeds have it and its size is finite and not zero.
+    is judged when at least two seeds have it and its size is finite and not zero. ``floor``
+    [L] (default 0) is an absolute lower bound of each margin, delta = max(margin |size|, floor):
+    an error-valued quantity takes the floor its error curve has, so that an error that has
+    decayed to rounding level is not held to 5 % of that level.
     """
     diff = np.asarray(diff, np.float64)
     size = np.asarray(size, np.float64)
     mean, sem, n = mean_sem(diff)
     delta = margin.margin * np.abs(size)
+    if floor is not None:
+        delta = np.maximum(delta, np.asarray(floor, np.float64))
     judged = (n >= 2) & np.isfinite(mean) & np.isfinite(delta) & (delta > 0)
     band = band_factor(diff[:, None, :], sem[None, :], n[None, :], judged, margin.alpha)
     # Below the bootstrap's seeds each quantity's Sidak factor takes its own degrees of freedom:

@@ -26,7 +26,10 @@ scenario's ``[agreement]`` margin relative to the landmark's simulated size,
     delta_l = agreement.margin * |mean of x_s^sim(l) over the same seeds|,
 
 so with the default 5 % a plateau left at t = 170 must be matched to within 8.5 in t, a decay
-rate of 0.043 to within 0.0022. The simultaneous band m +- c se covers every judged landmark of
+rate of 0.043 to within 0.0022. Error-valued landmarks (plateau height, final and asymptotic
+error) keep the floor their curve has, delta_l >= agreement.floor * max_t |mean simulated error|,
+so that an error decayed to rounding level (1e-13 in a noiseless run) is not held to 5 % of it.
+The simultaneous band m +- c se covers every judged landmark of
 the run at once (c from judgement.band_factor: bootstrap-t from 12 seeds, Sidak below), and the
 outcome per landmark is the same three-way rule as for the curves: agree when the band lies
 inside +-delta, disagree when it lies wholly outside, inconclusive otherwise (with about how many
@@ -68,6 +71,9 @@ from harness.results.judgement import (
     pointwise_interval,
 )
 from harness.results.landmarks import LANDMARKS, Landmarks, LandmarkSettings, landmarks_of, sampling_warning
+
+ERROR_VALUED = ("plateau_height", "final_error", "asymptotic_error")
+"""Landmarks that are values of the error curve, whose margin has the curve's floor."""
 
 LANDMARK_COLUMNS = ["seed", "landmark", "sim", "theory"]
 """The columns of landmarks.parquet: each seed's landmarks, simulated and theoretical (NaN: none)."""
@@ -166,6 +172,7 @@ class PairedLandmarks(NamedTuple):
             "verdict": self.verdict,
             "seeds_needed": self.seeds_needed,
             "margin": self.judgement.margin.margin,
+            "floor": self.judgement.margin.floor,
             "alpha": self.judgement.margin.alpha,
             "band_factor": band.factor,
             "band_method": band.method,
@@ -246,7 +253,10 @@ def pair_landmarks(
     paired = np.isfinite(diff)
     size = np.array([np.mean(sim[paired[:, j], c]) if paired[:, j].any() else np.nan
                      for j, c in enumerate(judged_columns)])
-    scalar = judge_scalars(diff, size, [names[c] for c in judged_columns], margin)
+    # error-valued landmarks share their curve's floor (harness.results.judgement): floor x its peak
+    peak = np.nanmax(np.abs(mean_sem(sim_values[:, :, error])[0]), initial=0.0)
+    floor = np.array([margin.floor * peak if names[c] in ERROR_VALUED else 0.0 for c in judged_columns])
+    scalar = judge_scalars(diff, size, [names[c] for c in judged_columns], margin, floor)
     by_name = {item.name: item for item in scalar.items}
 
     rows: list[LandmarkRow] = []
