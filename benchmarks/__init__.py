@@ -14,6 +14,8 @@ import math
 import os
 import platform
 import resource
+import subprocess
+import sys
 import time
 from collections.abc import Callable
 from typing import Any
@@ -26,6 +28,21 @@ def load_average() -> float:
             return float(handle.read().split()[0])
     except OSError:
         return math.nan
+
+
+def harness_command(*args: str, env: dict[str, str]) -> int:
+    """Run ``python -m harness ARGS`` quietly; its verdict's exit status (0, 1 or 3), or an error.
+
+    A run that judged its theory (agree 0, disagree 1, inconclusive 3) has done its work;
+    bad input (2) or a crash is an error the benchmark must not time.
+    """
+    from harness.results.judgement import EXIT_STATUS
+
+    done = subprocess.run([sys.executable, "-m", "harness", *args], env=env, stdout=subprocess.DEVNULL,
+                          stderr=subprocess.PIPE, text=True)
+    if done.returncode not in set(EXIT_STATUS.values()):
+        raise RuntimeError(f"harness {' '.join(args)} exited {done.returncode}: {done.stderr.strip()[-2000:]}")
+    return done.returncode
 
 
 def cpu_seconds() -> float:

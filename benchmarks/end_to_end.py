@@ -17,13 +17,11 @@ from __future__ import annotations
 
 import json
 import os
-import subprocess
-import sys
 import tempfile
 import time
 from pathlib import Path
 
-from benchmarks import load_average, row
+from benchmarks import harness_command, load_average, row
 
 NAME = "harness run (default scenario)"
 
@@ -32,10 +30,7 @@ def _harness_run(out: Path, cache: str) -> tuple[float, dict, float]:
     env = dict(os.environ, HARNESS_COMPILATION_CACHE=cache)
     load = load_average()
     started = time.perf_counter()
-    subprocess.run(
-        [sys.executable, "-m", "harness", "run", "--out", str(out)], env=env, check=True,
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-    )
+    harness_command("run", "--out", str(out), env=env)
     wall = time.perf_counter() - started
     manifest = json.loads(next(out.glob("*/manifest.json")).read_text())
     return wall, manifest["timings"], load

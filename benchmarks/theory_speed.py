@@ -12,12 +12,10 @@ from __future__ import annotations
 
 import json
 import os
-import subprocess
-import sys
 import tempfile
 from pathlib import Path
 
-from benchmarks import load_average, row
+from benchmarks import harness_command, load_average, row
 
 NAME = "theory vs simulation"
 SCENARIOS = {
@@ -31,10 +29,7 @@ FOLDER = Path(__file__).resolve().parent / "scenarios"
 def _run(scenario: Path, out: Path) -> tuple[dict, float]:
     env = dict(os.environ, HARNESS_COMPILATION_CACHE="off")
     load = load_average()
-    subprocess.run(
-        [sys.executable, "-m", "harness", "run", str(scenario), "--out", str(out)], env=env, check=True,
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-    )
+    harness_command("run", str(scenario), "--out", str(out), env=env)
     manifest = json.loads(next(out.glob("*/manifest.json")).read_text())
     return manifest["timings"], load
 
