@@ -17,28 +17,11 @@ from pathlib import Path
 
 import pytest
 from conftest_figures import write_run_folder, write_scaling_folder, write_sweep_folder
+from real_results import SWEEP, TINY  # the shared tiny scenario and its two-point sweep
 
 from harness.cli.main import main
 from harness.core import destinations
 from harness.runner.compile_clock import CompileClock
-
-TINY = """\
-[data]
-input_dim = 20
-
-[sgd]
-time = 1.0
-
-[run]
-seeds = 3
-evaluations = 4
-test_samples = 100
-"""
-
-SWEEP = TINY + """
-[sweep]
-"sgd.learning_rate" = [0.3, 0.6]
-"""
 
 
 def _tree(root: Path) -> list[tuple[str, int]]:

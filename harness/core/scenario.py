@@ -41,6 +41,7 @@ from pathlib import Path
 from typing import Any
 
 from harness.core import keys as k
+from harness.core import tables
 from harness.core.activations import ACTIVATIONS, NETWORK_ACTIVATIONS
 from harness.core.errors import InputError
 from harness.core.keys import Key
@@ -304,6 +305,9 @@ def resolve(table: Mapping[str, Any] | None = None, *, allow_sections: tuple[str
     for check in _REGISTRY.checks:
         check(scenario)
     return scenario
+
+
+tables.RESOLVER[:] = [resolve]  # how a pickled scenario is resolved again (harness.core.tables)
 
 
 def _fill_derived_defaults(s: dict[str, dict[str, Any]]) -> None:

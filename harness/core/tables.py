@@ -12,6 +12,9 @@ import json
 from collections.abc import Iterator, Mapping
 from typing import Any
 
+RESOLVER: list[Any] = []
+"""[resolve]: set by harness.core.scenario when it is imported, which every resolved scenario needs."""
+
 
 def plain(value: Any) -> Any:
     """Scenarios, sections and tuples as dicts and lists (JSON, TOML, comparisons)."""
@@ -78,8 +81,8 @@ class ScenarioBase(Mapping[str, Section]):
     def __reduce__(self):
         # Pickled (for a sweep's worker processes) as its table and resolved again there: the
         # worker then has the same extensions registered (harness.builtins) and checks it anew.
-        from harness.core.scenario import resolve
-
-        return (resolve, (plain(self),))
+        # The resolver is harness.core.scenario.resolve, handed down (RESOLVER) so that this
+        # module, below scenario, does not import it back.
+        return (RESOLVER[0], (plain(self),))
 
 
