@@ -67,8 +67,19 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    warnings.simplefilter("default")
-    warnings.formatwarning = lambda message, category, *rest: f"harness: warning: {message}\n"
+    # Warnings as one "harness: warning:" line each, for this command only: a caller that runs
+    # commands in-process (a test, a notebook) gets its own warning settings back afterwards.
+    format_before = warnings.formatwarning
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        warnings.formatwarning = lambda message, category, *rest: f"harness: warning: {message}\n"
+        try:
+            return _run_command(argv)
+        finally:
+            warnings.formatwarning = format_before
+
+
+def _run_command(argv: Sequence[str] | None) -> int:
     try:
         with interrupts.guard():  # start-up imports JAX, which can drop a Ctrl-C (harness.core.interrupts)
             args = build_parser().parse_args(argv)
