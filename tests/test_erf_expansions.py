@@ -9,21 +9,13 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 from scipy import integrate
+from test_relu_averages import correlation  # a random correlation matrix, well conditioned
 
 from harness.equations.erf_expansions import expansion, fit_residuals
 from harness.equations.gaussian_averages import gaussian_averages
 
 jax.config.update("jax_enable_x64", True)
 
-
-def correlation(rng: np.random.Generator, n: int, min_eigenvalue: float = 0.05) -> np.ndarray:
-    while True:
-        a = rng.normal(size=(n, n))
-        c = a @ a.T
-        d = np.sqrt(np.diag(c))
-        c = c / np.outer(d, d)
-        if np.linalg.eigvalsh(c).min() >= min_eigenvalue:
-            return c
 
 
 @pytest.mark.parametrize("name, value_error, slope_error", [("tanh", 1e-5, 1e-5), ("sigmoid", 5e-6, 3e-6)])
@@ -72,7 +64,7 @@ def test_erf_sums_agree_with_quadrature_of_the_exact_activations(student, teache
     # unit diagonal); the erf sums differ from them by the fits' errors, <= 1e-5 here.
     rng = np.random.default_rng(11)
     for diag in (0.5, 2.0):
-        cov = jnp.asarray(correlation(rng, 3) * diag)
+        cov = jnp.asarray(correlation(rng, 3, 0.05) * diag)
         fast = gaussian_averages(cov, 2, student, teacher)
         exact = gaussian_averages(cov, 2, student, teacher, method="quadrature", points=40)
         for name in ("I2", "I3", "I4", "J0"):
@@ -82,7 +74,7 @@ def test_erf_sums_agree_with_quadrature_of_the_exact_activations(student, teache
 
 def test_forced_erf_sum_route_reproduces_the_erf_closed_forms():
     # erf/erf through the virtual-network code (one term per unit) against Saad & Solla's forms.
-    cov = jnp.asarray(correlation(np.random.default_rng(12), 5) * 1.5)
+    cov = jnp.asarray(correlation(np.random.default_rng(12), 5, 0.05) * 1.5)
     closed = gaussian_averages(cov, 3, "erf", "erf")
     summed = gaussian_averages(cov, 3, "erf", "erf", method="erf_sum")
     for name in ("I2", "I3", "I4", "J0"):
