@@ -17,7 +17,6 @@ from harness.equations.gaussian_averages import gaussian_averages
 jax.config.update("jax_enable_x64", True)
 
 
-
 @pytest.mark.parametrize("name, value_error, slope_error", [("tanh", 1e-5, 1e-5), ("sigmoid", 5e-6, 3e-6)])
 def test_fitted_sums_have_the_stated_accuracy(name, value_error, slope_error):
     # The module docstring's table: worst error over the line (the sums and the exact
