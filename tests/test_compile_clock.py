@@ -57,9 +57,11 @@ def test_the_solver_program_has_no_host_callback_so_the_persistent_cache_keeps_i
     dyn, start = _dyn_and_start()
     static, rates = iid_theory.split_rates(dyn)
     piece = iid_theory._compiled_piece(static, 1e-6, 1e-8, 16)
-    carry = iid_theory._compiled_start(1)(jnp.zeros(1), tuple(jnp.asarray(x) for x in (start.Q, start.R, start.v)))
-    times, first = jnp.linspace(0.0, 1.0, 3), np.bool_(True)
-    args = (times, first, jnp.asarray(rates), carry, jnp.asarray(start.T), jnp.ones((1, 2)))
+    carry = iid_theory._compiled_start(1)(
+        jnp.zeros(1), tuple(jnp.asarray(x) for x in (start.Q, start.R, start.v)), jnp.ones(1)
+    )
+    times = jnp.linspace(0.0, 1.0, 3)
+    args = (times, jnp.asarray(rates), carry, jnp.asarray(start.T), jnp.ones((1, 2)))
     text = piece.lower(*args).as_text()
     assert "callback" not in text.lower()
 

@@ -12,7 +12,7 @@ a = (v_1..K, -vt_1..M), Delta = sum_c a_c g_c(u_c):
 
 The system is integrated by :mod:`harness.equations.ode_solve` (diffrax's Tsit5 at the
 scenario's rtol/atol, in pieces of the time grid that report progress), saved at the
-evaluation times, one solve per seed, vmapped over seeds, in float64.
+evaluation times, one solve per seed, the seeds in turn within one program, in float64.
 """
 
 from __future__ import annotations
@@ -27,7 +27,14 @@ import numpy as np
 from harness.core.devices import split_over_seeds
 from harness.core.scenario import Scenario
 from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
-from harness.equations.ode_solve import Carry, integrate_piece, solve_in_pieces, start_carry
+from harness.equations.ode_solve import (
+    SOLVER_COMPILER_OPTIONS,
+    Carry,
+    integrate_piece,
+    one_seed_at_a_time,
+    solve_in_pieces,
+    start_carry,
+)
 
 Array = jax.Array
 
@@ -132,13 +139,14 @@ def _compiled_piece(static: Dynamics, rtol: float, atol: float, steps: int, seed
     (harness.core.devices.split_over_seeds): each device solves its share in its own loop.
     """
 
-    def one(carry: Carry, T: Array, vt: Array, times: Array, first: Array, rates: Array):
+    def one(carry: Carry, T: Array, vt: Array, times: Array, rates: Array):
         dyn = with_rates(static, rates)
         field = lambda t, y: vector_field(dyn, y, T, vt)  # noqa: E731
-        return integrate_piece(field, carry, times, first, rtol=rtol, atol=atol, steps=steps)
+        return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps)
 
-    split = split_over_seeds(jax.vmap(one, in_axes=(0, 0, 0, None, None, None)), seeds, replicated=3)
-    return jax.jit(lambda times, first, rates, carry, T, vt: split(carry, T, vt, times, first, rates))
+    split = split_over_seeds(one_seed_at_a_time(one, shared=2), seeds, replicated=2)
+    return jax.jit(lambda times, rates, carry, T, vt: split(carry, T, vt, times, rates),
+                   compiler_options=SOLVER_COMPILER_OPTIONS)
 
 
 @functools.cache
@@ -170,10 +178,10 @@ def solve(
     times = np.asarray(times, np.float64)
     piece = _compiled_piece(static, float(rtol), float(atol), min(STEPS_PER_PIECE, int(max_steps)), seeds)
     T, vt, rates, ts = f64(initial.T), f64(teacher_v), f64(rates), f64(times)
-    carry = _compiled_start(seeds)(f64(np.full(seeds, times[0])), (f64(initial.Q), f64(initial.R), f64(initial.v)))
-    (Q, R, v), _ = solve_in_pieces(
-        lambda carry, first: piece(ts, first, rates, carry, T, vt), carry, times, max_steps=int(max_steps)
+    carry = _compiled_start(seeds)(
+        f64(np.full(seeds, times[0])), (f64(initial.Q), f64(initial.R), f64(initial.v)), f64(np.full(seeds, times[-1]))
     )
+    (Q, R, v), _ = solve_in_pieces(lambda carry: piece(ts, rates, carry, T, vt), carry, times, max_steps=int(max_steps))
     return OrderParameters(Q, R, np.repeat(np.asarray(T)[:, None], len(times), axis=1), v)
 
 

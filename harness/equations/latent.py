@@ -49,7 +49,14 @@ from harness.core.scenario import Scenario, ScenarioError, declare_keys, registe
 from harness.data import feature_covariance
 from harness.data.latent import LATENT_KINDS
 from harness.equations import iid as iid_theory
-from harness.equations.ode_solve import Carry, integrate_piece, solve_in_pieces, start_carry
+from harness.equations.ode_solve import (
+    SOLVER_COMPILER_OPTIONS,
+    Carry,
+    integrate_piece,
+    one_seed_at_a_time,
+    solve_in_pieces,
+    start_carry,
+)
 from harness.equations.sources import InitialState, Prediction, register_builtin_theory, values_from_order_parameters
 
 Array = jax.Array
@@ -117,14 +124,13 @@ def projected_vector_field(
 
 @functools.cache
 def _compiled_piece(static: iid_theory.Dynamics, rtol: float, atol: float, steps: int):
-    """One piece of every seed's solve, seed-vmapped and jit-compiled (once per shape and settings).
+    """One piece of every seed's solve, the seeds in turn, jit-compiled (once per shape and settings).
 
     The rates are run-time inputs (:func:`harness.equations.iid.split_rates`); the solve runs
     in pieces of ``steps`` steps (harness.equations.ode_solve.solve_in_pieces).
     """
 
-    def one(carry: Carry, spec: Spectrum, Q0: Array, R0: Array, T: Array, vt: Array, times: Array, first: Array,
-            rates: Array):
+    def one(carry: Carry, spec: Spectrum, Q0: Array, R0: Array, T: Array, vt: Array, times: Array, rates: Array):
         dyn = iid_theory.with_rates(static, rates)
 
         def order_parameters(q: Array, r: Array) -> tuple[Array, Array]:
@@ -143,9 +149,9 @@ def _compiled_piece(static: iid_theory.Dynamics, rtol: float, atol: float, steps
             Q, R = order_parameters(q, r)
             return Q, R, v
 
-        return integrate_piece(field, carry, times, first, rtol=rtol, atol=atol, steps=steps, observe=save)
+        return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps, observe=save)
 
-    return jax.jit(jax.vmap(one, in_axes=(0, 0, 0, 0, 0, 0, None, None, None)))
+    return jax.jit(one_seed_at_a_time(one, shared=2), compiler_options=SOLVER_COMPILER_OPTIONS)
 
 
 @functools.cache
@@ -177,10 +183,10 @@ def solve_projected(
     spec = Spectrum(*(f64(x) for x in spectra))
     Q0, R0, T, vt, ts, rates = (f64(x) for x in (initial.Q, initial.R, initial.T, teacher_v, times, rates))
     seeds = int(np.shape(initial.Q)[0])
-    carry = _compiled_start()(f64(np.full(seeds, times[0])), (spec.q0, spec.r0, f64(initial.v)))
+    carry = _compiled_start()(f64(np.full(seeds, times[0])), (spec.q0, spec.r0, f64(initial.v)),
+                              f64(np.full(seeds, times[-1])))
     (Q, R, v), steps = solve_in_pieces(
-        lambda carry, first: piece(carry, spec, Q0, R0, T, vt, ts, first, rates), carry, times,
-        max_steps=int(max_steps),
+        lambda carry: piece(carry, spec, Q0, R0, T, vt, ts, rates), carry, times, max_steps=int(max_steps)
     )
     ops = iid_theory.OrderParameters(Q, R, np.repeat(np.asarray(T)[:, None], len(times), axis=1), v)
     return ops, steps

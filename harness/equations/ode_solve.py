@@ -23,11 +23,14 @@ next step (kept by :class:`_PIDRememberingProposal`). The steps are therefore th
 of one uninterrupted solve, and so are the results: bit for bit, whatever the piece size
 (tests/test_solve_pieces.py), with no step restarted, no interpolation at the joins and no
 effect on accuracy. What pieces cost is one call and one copy of the values to the host per
-piece (~5 ms each; the default scenario's theory takes seven pieces). Only the first step
-differs from a solve by ``diffrax.diffeqsolve`` with ``dt0=None``: it is the same estimate
-(Hairer, Norsett & Wanner, Solving ODEs I, section II.4), passed as an explicit first step,
-which moved the default scenario's trajectories by at most 6e-7 (its error against a solve
-at rtol = 1e-11 is 2e-6 either way).
+piece (~5 ms each; the default scenario's theory takes seven pieces). The first step is a
+fixed small fraction of the time range (:func:`start_carry`), not diffrax's estimate.
+
+**Compile time.** A piece is one compiled program per shape, and compiling it is most of a
+first run's theory time, so three choices keep it small: the seeds are solved one after
+another inside the program (:func:`one_seed_at_a_time`), not vmapped; no automatic first-step
+estimate (two more copies of the right-hand side); LLVM's passes skipped
+(:data:`SOLVER_COMPILER_OPTIONS`). Each is measured where it is defined.
 """
 
 from __future__ import annotations
@@ -114,21 +117,57 @@ RUNNING, DONE, FAILED = 0, 1, 2
 """A seed's status after a piece: steps left to take, the final time reached, the solve failed."""
 
 
-def start_carry(t0: Array, y0: PyTree) -> Carry:
-    """The carry before the first piece (the first piece chooses its own first step). Traceable."""
+FIRST_STEP = 1e-6
+"""A solve's first step, as a fraction of its time range (the controller then grows it by at most 10x a step)."""
+
+
+def start_carry(t0: Array, y0: PyTree, t1: Array) -> Carry:
+    """The carry before the first piece of a solve from ``t0`` to ``t1``. Traceable.
+
+    The first step is :data:`FIRST_STEP` of the range. The usual automatic choice (Hairer,
+    Norsett & Wanner, Solving ODEs I, section II.4) costs two evaluations of the right-hand
+    side, and each evaluation written into a program is compiled again (1.5 s for the relu
+    averages at K = 3, M = 2); a step that is surely small enough costs instead the few steps
+    the controller needs to grow it (factor 10 at most per step: 4-6 steps on the default
+    scenario), and those steps are as accurate as any other.
+    """
     t0 = jnp.asarray(t0, jnp.float64)
     one = jnp.ones_like(t0)
+    first_end = t0 + FIRST_STEP * (jnp.asarray(t1, jnp.float64) - t0)
     return Carry(
-        t0, y0, ((one, one, jnp.zeros_like(t0, dtype=bool)), t0),
+        t0, y0, ((one, one, jnp.zeros_like(t0, dtype=bool)), first_end),
         (jnp.ones_like(t0, dtype=bool), jax.tree_util.tree_map(jnp.zeros_like, y0)),
     )
+
+
+def one_seed_at_a_time(solve_one: Callable[..., Any], shared: int) -> Callable[..., Any]:
+    """``solve_one`` applied to each seed in turn (``lax.map``); the last ``shared`` arguments are common to all.
+
+    Why not ``vmap``: a vmapped solve is a batched while loop, whose every branch becomes a
+    select over all seeds; tracing it costs ~40 % more and it compiles slower, while a piece
+    runs no faster (8 seeds, measured per piece: tanh 766 ms in turn against 818 ms vmapped,
+    relu 141 against 169 ms, erf 20 against 18 ms). In turn, a seed's numbers also cannot depend
+    on which other seeds share its batch.
+    """
+
+    def each(*args: Any) -> Any:
+        own, common = args[: len(args) - shared], args[len(args) - shared :]
+        return jax.lax.map(lambda per_seed: solve_one(*per_seed, *common), own)
+
+    return each
+
+
+SOLVER_COMPILER_OPTIONS = {"xla_backend_optimization_level": 0}
+"""XLA options for the theories' compiled pieces: LLVM's optimisation passes are skipped (XLA's own
+graph optimisations still run). Measured on the relu and tanh benchmark scenarios: backend
+compilation 2-2.5 s shorter and the solve no slower (its time goes to small matrix operations
+and the solver's control flow, which LLVM cannot speed up)."""
 
 
 def integrate_piece(
     field: Callable[[Array, PyTree], PyTree],
     carry: Carry,
     times: Array,
-    first: Array,
     *,
     rtol: float,
     atol: float,
@@ -139,8 +178,7 @@ def integrate_piece(
 
     ``observed`` holds ``observe(t, y)`` at every one of ``times``; entries before the
     carry's time or beyond the time reached are meaningless (the caller keeps the new ones).
-    ``first`` (a scalar, the same for every seed) marks the first piece, which chooses its
-    first step with diffrax's estimate; later pieces continue from the carry. A state that is
+    Every piece continues from the carry (:func:`start_carry` for the first). A state that is
     not finite (a failed seed) is not stepped. Traceable: call it inside jit/vmap.
     """
     observe = observe if observe is not None else (lambda t, y: y)
@@ -150,13 +188,7 @@ def integrate_piece(
     t_end = times[-1]
     finite = jnp.all(jnp.stack([jnp.all(jnp.isfinite(leaf)) for leaf in jax.tree_util.tree_leaves(carry.y)]))
     end = jnp.where(finite, t_end, carry.t)
-
-    def first_proposal() -> Array:
-        proposal, _ = controller.init(term, carry.t, end, carry.y, None, None, solver.func, solver.error_order(term))
-        return proposal
-
-    proposal = jax.lax.cond(first, first_proposal, lambda: carry.controller[1])
-    dt0 = jnp.clip(proposal - carry.t, 0.0, end - carry.t)
+    dt0 = jnp.clip(carry.controller[1] - carry.t, 0.0, end - carry.t)
     solution = diffrax.diffeqsolve(
         term, solver, t0=carry.t, t1=end, dt0=dt0, y0=carry.y,
         saveat=diffrax.SaveAt(
@@ -204,7 +236,7 @@ def reporting_progress(report: ProgressReport | None) -> Iterator[None]:
 
 
 def solve_in_pieces(
-    run_piece: Callable[[Carry, bool], tuple[PyTree, Carry, Any, Any]],
+    run_piece: Callable[[Carry], tuple[PyTree, Carry, Any, Any]],
     carry: Carry,
     times: np.ndarray,
     *,
@@ -212,7 +244,7 @@ def solve_in_pieces(
 ) -> tuple[PyTree, np.ndarray]:
     """Call a compiled piece until every seed is done; (observed ``[S, E, ...]``, accepted steps ``[S]``).
 
-    ``run_piece(carry, first)`` runs :func:`integrate_piece` for every seed (leading seed
+    ``run_piece(carry)`` runs :func:`integrate_piece` for every seed (leading seed
     axis S) over the evaluation ``times`` and returns ``(observed [S, E, ...], carry,
     status [S], steps [S])``. Each piece's new values (the evaluation times it passed) are
     gathered on the host; the carry stays on the devices. A seed whose solve fails, or that
@@ -226,7 +258,7 @@ def solve_in_pieces(
     first = True
     while True:
         before = np.asarray(carry.t)
-        observed, carry, status, steps = run_piece(carry, np.bool_(first))
+        observed, carry, status, steps = run_piece(carry)
         after, status = np.asarray(carry.t), np.asarray(status)
         taken = np.asarray(steps) if taken is None else taken + np.asarray(steps)
         # new values: the evaluation times this piece passed (and, in the first, the start itself)
