@@ -17,6 +17,8 @@ Everything else is the built-in section-3 field, reused from :mod:`harness.equat
 
 from __future__ import annotations
 
+import functools
+
 import diffrax
 import jax
 import jax.numpy as jnp
@@ -37,25 +39,37 @@ def decayed_field(dyn: iid_theory.Dynamics, kappa: float, state, T, teacher_v):
     return dQ, dR, dv
 
 
-def predict(scenario: dict, start: InitialState, times: np.ndarray) -> dict[str, np.ndarray]:
-    """Per-seed predictions ``[S, E]`` of every observable (a paired comparison)."""
-    dyn = iid_theory.dynamics_of(scenario)
-    kappa = scenario["sgd"]["weight_decay"]
-    theory = scenario["theory"]
-    ts = jnp.asarray(times, jnp.float64)
+@functools.cache
+def _solver(dyn: iid_theory.Dynamics, rtol: float, atol: float):
+    """Every seed's solve, compiled once per dynamics and tolerances.
 
-    def one_seed(Q0, R0, T, v0, vt):
+    kappa and the evaluation times are inputs of the compiled program, not constants in it,
+    so that several weight decays (a sweep, or a theory held against decays 10 % off) share
+    one compilation instead of tracing and compiling the solve again each time.
+    """
+
+    def one_seed(kappa, ts, Q0, R0, T, v0, vt):
         term = diffrax.ODETerm(lambda t, y, args: decayed_field(dyn, kappa, y, T, vt))
         solution = diffrax.diffeqsolve(
             term, diffrax.Tsit5(), t0=ts[0], t1=ts[-1], dt0=None, y0=(Q0, R0, v0),
             saveat=diffrax.SaveAt(ts=ts),
-            stepsize_controller=diffrax.PIDController(rtol=theory["rtol"], atol=theory["atol"]),
+            stepsize_controller=diffrax.PIDController(rtol=rtol, atol=atol),
             max_steps=1_000_000,
         )
         return solution.ys
 
+    return jax.jit(jax.vmap(one_seed, in_axes=(None, None, 0, 0, 0, 0, 0)))
+
+
+def predict(scenario: dict, start: InitialState, times: np.ndarray) -> dict[str, np.ndarray]:
+    """Per-seed predictions ``[S, E]`` of every observable (a paired comparison)."""
+    dyn = iid_theory.dynamics_of(scenario)
+    kappa = jnp.asarray(scenario["sgd"]["weight_decay"], jnp.float64)
+    theory = scenario["theory"]
+    ts = jnp.asarray(times, jnp.float64)
+    solve = _solver(dyn, float(theory["rtol"]), float(theory["atol"]))
     ops0 = start.order_parameters
-    Q, R, v = jax.jit(jax.vmap(one_seed))(ops0.Q, ops0.R, ops0.T, ops0.v, start.teacher_v)
+    Q, R, v = solve(kappa, ts, ops0.Q, ops0.R, ops0.T, ops0.v, start.teacher_v)
     e = len(times)
     T = np.broadcast_to(ops0.T[:, None], (len(start.seeds), e) + ops0.T.shape[1:])
     vt = np.broadcast_to(start.teacher_v[:, None, :], (len(start.seeds), e, start.teacher_v.shape[1]))
