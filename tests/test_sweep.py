@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 import json
 import os
 import re
@@ -329,12 +331,20 @@ def test_temporary_names_tell_a_dead_writers_leftovers_from_live_work(tmp_path):
 
 @pytest.fixture(scope="module")
 def killed_and_resumed(tmp_path_factory):
-    """A `harness sweep` SIGKILLed mid-way (with its worker processes), then run again."""
+    """A `harness sweep` SIGKILLed mid-way (with its worker process), then run again.
+
+    One worker process: the points are computed one after the other, so the kill comes while
+    point 1 simulates from its checkpoints with point 0 stored, as with two workers, but the
+    sweep does not compete for the two cores with a second worker (and another test). The
+    rerun gets no signal: it is the same command run in this process (its exit status main's
+    return value), which saves starting and importing a second client.
+    """
     folder = tmp_path_factory.mktemp("sweep")
     path = _write(folder / "lr.toml", TINY + SWEPT)
     plan = sweep.load_sweep(path)
     out = folder / "out"
-    command = [sys.executable, "-m", "harness", "sweep", str(path), "--out", str(out), "--processes", "2", "--quiet"]
+    arguments = ["sweep", str(path), "--out", str(out), "--processes", "1", "--quiet"]
+    command = [sys.executable, "-m", "harness", *arguments]
     process = subprocess.Popen(command, start_new_session=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 600
     while True:
@@ -353,7 +363,10 @@ def killed_and_resumed(tmp_path_factory):
     stale = out / ".0123456789ab.tmpxyz.partial"  # a leftover as a killed writer leaves it, an hour old
     stale.mkdir()
     os.utime(stale, (time.time() - 3600, time.time() - 3600))
-    rerun = subprocess.run(command, capture_output=True, text=True, timeout=600)
+    printed, errors = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(printed), contextlib.redirect_stderr(errors):
+        status = main(arguments)
+    rerun = types.SimpleNamespace(returncode=status, stdout=printed.getvalue(), stderr=errors.getvalue())
     return plan, out, before, rerun
 
 
