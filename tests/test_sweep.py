@@ -418,13 +418,24 @@ def test_a_complete_folder_whose_index_row_was_lost_is_stored_again(killed_and_r
 def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_and_resumed, tmp_path):
     import logging
 
+    import dask
     from distributed import Client, LocalCluster
 
     plan, local_out, _, _ = killed_and_resumed
     plan = plan._replace(points=plan.points[:2], scenarios=plan.scenarios[:2], run_ids=plan.run_ids[:2])
-    cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None,
-                           silence_logs=logging.CRITICAL, env=dict(sweep.WORKER_ENVIRONMENT))
+    # Each worker is given its point at once (no queue on the scheduler) and keeps what it is
+    # given (no stealing): the killed worker's point goes to the surviving worker, whose
+    # programs are compiled by then, not to the replacement the nanny starts, which would
+    # import and compile everything again (~10 s). Either way the scheduler computes the point
+    # again and the client must store each point once.
+    with dask.config.set({"distributed.scheduler.worker-saturation": float("inf"),
+                          "distributed.scheduler.work-stealing": False}):
+        cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None,
+                               silence_logs=logging.CRITICAL, env=dict(sweep.WORKER_ENVIRONMENT))
     client = Client(cluster)
+    # The worker processes' pids from their nannies (in this process): asking a worker itself
+    # waits for it while it imports and compiles, holding the interpreter lock.
+    pids = {nanny.worker_address: nanny.process.pid for nanny in cluster.workers.values()}
     killed: list[str] = []
 
     def kill_a_busy_worker() -> None:
@@ -434,8 +445,7 @@ def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_a
             if busy:
                 time.sleep(1.0)  # well into the point: importing, compiling, simulating
                 if client.processing().get(busy[0]):
-                    pid = client.run(os.getpid, workers=[busy[0]])[busy[0]]
-                    os.kill(pid, signal.SIGKILL)  # a worker process this test started
+                    os.kill(pids[busy[0]], signal.SIGKILL)  # a worker process this test started
                     killed.append(busy[0])
                     return
             time.sleep(0.05)
