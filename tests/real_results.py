@@ -10,14 +10,23 @@ sweep (the sweep driver, its points computed in this process so the compiled pro
 shared). Everything is made under umask 022 so the file-mode test can check it. About 40 s
 on a quiet 2-core machine, most of it compiling and drawing figures; made once
 (``functools.cache``) in a temporary folder removed when the session ends.
+
+Under pytest-xdist every worker process would make its own copy (40 s of a core each, and the
+tests that read it land on every worker), so the workers of one test run share one: the first
+to ask makes it under an exclusive lock while the others wait for it, then each reads back the
+very objects the maker returned (pickled, so the scaling verdict keeps its NaNs and the
+round-trip test still compares the file with what `run_scaling` returned, not with itself).
+Nothing writes into the folder after it is made. The last worker process to end removes it.
 """
 
 from __future__ import annotations
 
 import atexit
 import concurrent.futures
+import fcntl
 import functools
 import os
+import pickle
 import shutil
 import tempfile
 from collections.abc import Iterator
@@ -114,7 +123,41 @@ class RealResults(NamedTuple):
 
 @functools.cache
 def real_results() -> RealResults:
-    """Make (once) and return the shared results folder."""
+    """Make (once per test run) and return the shared results folder."""
+    run = os.environ.get("PYTEST_XDIST_TESTRUNUID")  # the same in every xdist worker of one run
+    if not run:
+        base = Path(tempfile.mkdtemp(prefix="harness-real-results-"))
+        atexit.register(shutil.rmtree, base, True)
+        return _make(base)
+    base = Path(tempfile.gettempdir()) / f"harness-real-results-{run}"
+    base.mkdir(exist_ok=True)
+    users = open(base.parent / f"{base.name}.users", "a+")  # noqa: SIM115 (held until this process ends)
+    fcntl.flock(users, fcntl.LOCK_SH)  # this process uses the folder ...
+    atexit.register(_remove_if_last, base, users)  # ... until it ends
+    made = base / "made.pickle"
+    with open(base.parent / f"{base.name}.lock", "a+") as lock:
+        fcntl.flock(lock, fcntl.LOCK_EX)  # one maker; the others wait here for it
+        if not made.is_file():  # (a maker that failed left no pickle: this one starts afresh beside it)
+            results = _make(Path(tempfile.mkdtemp(prefix="made-", dir=base)))
+            temporary = made.with_suffix(".partial")
+            temporary.write_bytes(pickle.dumps(results))
+            temporary.replace(made)
+    return pickle.loads(made.read_bytes())
+
+
+def _remove_if_last(base: Path, users) -> None:
+    """Remove the shared folder if no other process holds it (their shared locks end with them)."""
+    with users:
+        try:
+            fcntl.flock(users, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return  # another worker still uses it; the last one removes it
+        shutil.rmtree(base, ignore_errors=True)
+        for name in (f"{base.name}.users", f"{base.name}.lock"):
+            (base.parent / name).unlink(missing_ok=True)
+
+
+def _make(base: Path) -> RealResults:
     import contextlib
     import io
 
@@ -122,8 +165,6 @@ def real_results() -> RealResults:
     from harness.core import scenario as scenario_lib
     from harness.studies import scaling, sweep
 
-    base = Path(tempfile.mkdtemp(prefix="harness-real-results-"))
-    atexit.register(shutil.rmtree, base, True)
     root = base / "results"
     scenario_file = base / "tiny.toml"
     scenario_file.write_text(TINY)

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 import json
 import os
 import re
@@ -17,6 +19,7 @@ import jax
 import numpy as np
 import pandas as pd
 import pytest
+from real_results import InProcessExecutor
 
 from harness.cli.main import main
 from harness.core import scenario as scenario_lib
@@ -329,12 +332,20 @@ def test_temporary_names_tell_a_dead_writers_leftovers_from_live_work(tmp_path):
 
 @pytest.fixture(scope="module")
 def killed_and_resumed(tmp_path_factory):
-    """A `harness sweep` SIGKILLed mid-way (with its worker processes), then run again."""
+    """A `harness sweep` SIGKILLed mid-way (with its worker process), then run again.
+
+    One worker process: the points are computed one after the other, so the kill comes while
+    point 1 simulates from its checkpoints with point 0 stored, as with two workers, but the
+    sweep does not compete for the two cores with a second worker (and another test). The
+    rerun gets no signal: it is the same command run in this process (its exit status main's
+    return value), which saves starting and importing a second client.
+    """
     folder = tmp_path_factory.mktemp("sweep")
     path = _write(folder / "lr.toml", TINY + SWEPT)
     plan = sweep.load_sweep(path)
     out = folder / "out"
-    command = [sys.executable, "-m", "harness", "sweep", str(path), "--out", str(out), "--processes", "2", "--quiet"]
+    arguments = ["sweep", str(path), "--out", str(out), "--processes", "1", "--quiet"]
+    command = [sys.executable, "-m", "harness", *arguments]
     process = subprocess.Popen(command, start_new_session=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     deadline = time.monotonic() + 600
     while True:
@@ -353,7 +364,10 @@ def killed_and_resumed(tmp_path_factory):
     stale = out / ".0123456789ab.tmpxyz.partial"  # a leftover as a killed writer leaves it, an hour old
     stale.mkdir()
     os.utime(stale, (time.time() - 3600, time.time() - 3600))
-    rerun = subprocess.run(command, capture_output=True, text=True, timeout=600)
+    printed, errors = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(printed), contextlib.redirect_stderr(errors):
+        status = main(arguments)
+    rerun = types.SimpleNamespace(returncode=status, stdout=printed.getvalue(), stderr=errors.getvalue())
     return plan, out, before, rerun
 
 
@@ -387,7 +401,10 @@ def test_a_complete_folder_whose_index_row_was_lost_is_stored_again(killed_and_r
     kept = read_index(copy)
     lost = plan.run_ids[1]
     kept[kept["run_id"] != lost].to_parquet(copy / "runs.parquet")  # died between folder and row
-    outcome = sweep.run_sweep(plan, copy, sweep.LocalExecutor(1), show_progress=False)
+    # The lost point is computed again in this process (the sweep's own storing and index code;
+    # no worker process to start and import): its trajectories must still equal, bit for bit,
+    # the ones a sweep worker process computed.
+    outcome = sweep.run_sweep(plan, copy, InProcessExecutor(), show_progress=False)
     assert (outcome.computed, outcome.reused, outcome.failed) == (1, 2, 0)
     again = read_index(copy)
     assert sorted(again["run_id"]) == sorted(plan.run_ids)
@@ -401,13 +418,24 @@ def test_a_complete_folder_whose_index_row_was_lost_is_stored_again(killed_and_r
 def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_and_resumed, tmp_path):
     import logging
 
+    import dask
     from distributed import Client, LocalCluster
 
     plan, local_out, _, _ = killed_and_resumed
     plan = plan._replace(points=plan.points[:2], scenarios=plan.scenarios[:2], run_ids=plan.run_ids[:2])
-    cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None,
-                           silence_logs=logging.CRITICAL, env=dict(sweep.WORKER_ENVIRONMENT))
+    # Each worker is given its point at once (no queue on the scheduler) and keeps what it is
+    # given (no stealing): the killed worker's point goes to the surviving worker, whose
+    # programs are compiled by then, not to the replacement the nanny starts, which would
+    # import and compile everything again (~10 s). Either way the scheduler computes the point
+    # again and the client must store each point once.
+    with dask.config.set({"distributed.scheduler.worker-saturation": float("inf"),
+                          "distributed.scheduler.work-stealing": False}):
+        cluster = LocalCluster(n_workers=2, processes=True, threads_per_worker=1, dashboard_address=None,
+                               silence_logs=logging.CRITICAL, env=dict(sweep.WORKER_ENVIRONMENT))
     client = Client(cluster)
+    # The worker processes' pids from their nannies (in this process): asking a worker itself
+    # waits for it while it imports and compiles, holding the interpreter lock.
+    pids = {nanny.worker_address: nanny.process.pid for nanny in cluster.workers.values()}
     killed: list[str] = []
 
     def kill_a_busy_worker() -> None:
@@ -417,8 +445,7 @@ def test_a_worker_killed_mid_sweep_on_dask_loses_and_duplicates_nothing(killed_a
             if busy:
                 time.sleep(1.0)  # well into the point: importing, compiling, simulating
                 if client.processing().get(busy[0]):
-                    pid = client.run(os.getpid, workers=[busy[0]])[busy[0]]
-                    os.kill(pid, signal.SIGKILL)  # a worker process this test started
+                    os.kill(pids[busy[0]], signal.SIGKILL)  # a worker process this test started
                     killed.append(busy[0])
                     return
             time.sleep(0.05)
