@@ -28,7 +28,6 @@ from harness.core.devices import split_over_seeds
 from harness.core.scenario import Scenario
 from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
 from harness.equations.ode_solve import (
-    SOLVER_COMPILER_OPTIONS,
     Carry,
     integrate_piece,
     one_seed_at_a_time,
@@ -145,8 +144,7 @@ def _compiled_piece(static: Dynamics, rtol: float, atol: float, steps: int, seed
         return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps)
 
     split = split_over_seeds(one_seed_at_a_time(one, shared=2), seeds, replicated=2)
-    return jax.jit(lambda times, rates, carry, T, vt: split(carry, T, vt, times, rates),
-                   compiler_options=SOLVER_COMPILER_OPTIONS)
+    return jax.jit(lambda times, rates, carry, T, vt: split(carry, T, vt, times, rates))
 
 
 @functools.cache

@@ -50,7 +50,6 @@ from harness.data import feature_covariance
 from harness.data.latent import LATENT_KINDS
 from harness.equations import iid as iid_theory
 from harness.equations.ode_solve import (
-    SOLVER_COMPILER_OPTIONS,
     Carry,
     integrate_piece,
     one_seed_at_a_time,
@@ -151,7 +150,7 @@ def _compiled_piece(static: iid_theory.Dynamics, rtol: float, atol: float, steps
 
         return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps, observe=save)
 
-    return jax.jit(one_seed_at_a_time(one, shared=2), compiler_options=SOLVER_COMPILER_OPTIONS)
+    return jax.jit(one_seed_at_a_time(one, shared=2))
 
 
 @functools.cache

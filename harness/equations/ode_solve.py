@@ -27,10 +27,11 @@ piece (~5 ms each; the default scenario's theory takes seven pieces). The first 
 fixed small fraction of the time range (:func:`start_carry`), not diffrax's estimate.
 
 **Compile time.** A piece is one compiled program per shape, and compiling it is most of a
-first run's theory time, so three choices keep it small: the seeds are solved one after
-another inside the program (:func:`one_seed_at_a_time`), not vmapped; no automatic first-step
-estimate (two more copies of the right-hand side); LLVM's passes skipped
-(:data:`SOLVER_COMPILER_OPTIONS`). Each is measured where it is defined.
+first run's theory time, so two choices keep it small: the seeds are solved one after
+another inside the program (:func:`one_seed_at_a_time`), not vmapped, and there is no
+automatic first-step estimate (two more copies of the right-hand side); each is measured where
+it is defined. Skipping LLVM's optimisation passes (``xla_backend_optimization_level=0``) was
+tried and not kept: 0.1-1.7 s less compiling, but the relu solve ran 2.8x slower.
 """
 
 from __future__ import annotations
@@ -144,10 +145,12 @@ def one_seed_at_a_time(solve_one: Callable[..., Any], shared: int) -> Callable[.
     """``solve_one`` applied to each seed in turn (``lax.map``); the last ``shared`` arguments are common to all.
 
     Why not ``vmap``: a vmapped solve is a batched while loop, whose every branch becomes a
-    select over all seeds; tracing it costs ~40 % more and it compiles slower, while a piece
-    runs no faster (8 seeds, measured per piece: tanh 766 ms in turn against 818 ms vmapped,
-    relu 141 against 169 ms, erf 20 against 18 ms). In turn, a seed's numbers also cannot depend
-    on which other seeds share its batch.
+    select over all seeds; tracing it costs ~40 % more and it compiles slower, while the solve
+    runs about as fast. Measured on the benchmark scenarios (benchmarks/scenarios), a theory's
+    compile time from a cold cache and then its solve, in turn against vmapped: relu K = 3,
+    16 seeds 7.3 s and 0.17 s against 9.3 s and 0.15 s; tanh K = 2, 8 seeds 6.7 s and 0.34 s
+    against 7.7 s and 0.46 s; erf K = 3 6.4 s and 0.06 s against 9.2 s and 0.05 s. In turn, a
+    seed's numbers also cannot depend on which other seeds share its batch.
     """
 
     def each(*args: Any) -> Any:
@@ -155,13 +158,6 @@ def one_seed_at_a_time(solve_one: Callable[..., Any], shared: int) -> Callable[.
         return jax.lax.map(lambda per_seed: solve_one(*per_seed, *common), own)
 
     return each
-
-
-SOLVER_COMPILER_OPTIONS = {"xla_backend_optimization_level": 0}
-"""XLA options for the theories' compiled pieces: LLVM's optimisation passes are skipped (XLA's own
-graph optimisations still run). Measured on the relu and tanh benchmark scenarios: backend
-compilation 2-2.5 s shorter and the solve no slower (its time goes to small matrix operations
-and the solver's control flow, which LLVM cannot speed up)."""
 
 
 def integrate_piece(
