@@ -129,8 +129,9 @@ def start_carry(t0: Array, y0: PyTree, t1: Array) -> Carry:
     Norsett & Wanner, Solving ODEs I, section II.4) costs two evaluations of the right-hand
     side, and each evaluation written into a program is compiled again (1.5 s for the relu
     averages at K = 3, M = 2); a step that is surely small enough costs instead the few steps
-    the controller needs to grow it (factor 10 at most per step: 4-6 steps on the default
-    scenario), and those steps are as accurate as any other.
+    the controller needs to grow it (factor 10 at most per step). On the default scenario a
+    seed's solve takes 89-102 steps, against 86-103 with the estimate, and every step is held
+    to the same tolerance either way.
     """
     t0 = jnp.asarray(t0, jnp.float64)
     one = jnp.ones_like(t0)
