@@ -63,7 +63,7 @@ def integrate(
 
     ``observe`` defaults to the state itself. Every leaf of the result is NaN if the solve
     failed. Traceable: call it inside jit/vmap. One piece, for short solves inside other
-    programs (fixed points); the theories use :func:`integrate_chunk` and :func:`solve_in_chunks`.
+    programs (fixed points); the theories use :func:`integrate_piece` and :func:`solve_in_pieces`.
     """
     saveat = diffrax.SaveAt(ts=ts) if observe is None else diffrax.SaveAt(ts=ts, fn=lambda t, y, args: observe(t, y))
     solution = diffrax.diffeqsolve(
