@@ -24,10 +24,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from harness.core.devices import split_over_seeds
+from harness.core.devices import place_on_devices, split_over_seeds
 from harness.core.scenario import Scenario
 from harness.equations.gaussian_averages import gaussian_averages, generalisation_error
 from harness.equations.ode_solve import (
+    PIECE_COMPILER_OPTIONS,
     Carry,
     integrate_piece,
     one_seed_at_a_time,
@@ -144,13 +145,9 @@ def _compiled_piece(static: Dynamics, rtol: float, atol: float, steps: int, seed
         return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps)
 
     split = split_over_seeds(one_seed_at_a_time(one, shared=2), seeds, replicated=2)
-    return jax.jit(lambda times, rates, carry, T, vt: split(carry, T, vt, times, rates))
-
-
-@functools.cache
-def _compiled_start(seeds: int):
-    """The carry before the first piece, placed as the pieces expect it (split over devices like them)."""
-    return jax.jit(split_over_seeds(jax.vmap(start_carry), seeds))
+    return jax.jit(
+        lambda times, rates, carry, T, vt: split(carry, T, vt, times, rates), compiler_options=PIECE_COMPILER_OPTIONS
+    )
 
 
 def solve(
@@ -170,14 +167,16 @@ def solve(
     :data:`STEPS_PER_PIECE` steps (:func:`harness.equations.ode_solve.solve_in_pieces`), which
     report progress; a seed whose solve fails or needs more than ``max_steps`` steps is NaN.
     """
-    f64 = lambda x: jnp.asarray(x, jnp.float64)  # noqa: E731
+    # host arrays: the piece's jit places them as it splits the seeds (no resharding program)
+    f64 = lambda x: np.asarray(x, np.float64)  # noqa: E731
     static, rates = split_rates(dyn)
     seeds = int(np.shape(initial.Q)[0])
     times = np.asarray(times, np.float64)
     piece = _compiled_piece(static, float(rtol), float(atol), min(STEPS_PER_PIECE, int(max_steps)), seeds)
     T, vt, rates, ts = f64(initial.T), f64(teacher_v), f64(rates), f64(times)
-    carry = _compiled_start(seeds)(
-        f64(np.full(seeds, times[0])), (f64(initial.Q), f64(initial.R), f64(initial.v)), f64(np.full(seeds, times[-1]))
+    # placed as the pieces return it, so that the first piece and the rest are one compiled program
+    carry = place_on_devices(
+        start_carry(np.full(seeds, times[0]), (initial.Q, initial.R, initial.v), np.full(seeds, times[-1])), seeds
     )
     (Q, R, v), _ = solve_in_pieces(lambda carry: piece(ts, rates, carry, T, vt), carry, times, max_steps=int(max_steps))
     return OrderParameters(Q, R, np.repeat(np.asarray(T)[:, None], len(times), axis=1), v)

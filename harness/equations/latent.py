@@ -50,6 +50,7 @@ from harness.data import feature_covariance
 from harness.data.latent import LATENT_KINDS
 from harness.equations import iid as iid_theory
 from harness.equations.ode_solve import (
+    PIECE_COMPILER_OPTIONS,
     Carry,
     integrate_piece,
     one_seed_at_a_time,
@@ -150,12 +151,7 @@ def _compiled_piece(static: iid_theory.Dynamics, rtol: float, atol: float, steps
 
         return integrate_piece(field, carry, times, rtol=rtol, atol=atol, steps=steps, observe=save)
 
-    return jax.jit(one_seed_at_a_time(one, shared=2))
-
-
-@functools.cache
-def _compiled_start():
-    return jax.jit(jax.vmap(start_carry))
+    return jax.jit(one_seed_at_a_time(one, shared=2), compiler_options=PIECE_COMPILER_OPTIONS)
 
 
 def solve_projected(
@@ -182,8 +178,9 @@ def solve_projected(
     spec = Spectrum(*(f64(x) for x in spectra))
     Q0, R0, T, vt, ts, rates = (f64(x) for x in (initial.Q, initial.R, initial.T, teacher_v, times, rates))
     seeds = int(np.shape(initial.Q)[0])
-    carry = _compiled_start()(f64(np.full(seeds, times[0])), (spec.q0, spec.r0, f64(initial.v)),
-                              f64(np.full(seeds, times[-1])))
+    # on the device, as the pieces return it: the first piece and the rest are one compiled program
+    start = start_carry(np.full(seeds, times[0]), (spectra.q0, spectra.r0, initial.v), np.full(seeds, times[-1]))
+    carry = jax.device_put(start)
     (Q, R, v), steps = solve_in_pieces(
         lambda carry: piece(carry, spec, Q0, R0, T, vt, ts, rates), carry, times, max_steps=int(max_steps)
     )

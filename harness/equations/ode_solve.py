@@ -114,6 +114,21 @@ class Carry(NamedTuple):
     solver: PyTree  # Tsit5's state: (first step?, the derivative at t)
 
 
+PIECE_COMPILER_OPTIONS: dict[str, Any] = {"xla_cpu_use_fusion_emitters": False}
+"""XLA options for compiling a piece (``jax.jit(..., compiler_options=PIECE_COMPILER_OPTIONS)``).
+
+XLA's CPU backend emits its fused loops through either its newer MLIR-based emitters or its
+older LLVM IR emitters; for a piece (a while loop of small element-wise fusions) the older
+ones compile 1-1.8 s faster and run 10-30 % slower. A theory's solve is tenths of a second
+and its compile is seconds, so the older emitters win. Measured on the benchmark scenarios
+(benchmarks/scenarios), one piece for 16 (relu, erf) or 8 (tanh) seeds, compile then one call,
+new emitters against old: relu K = 3 5.1-5.3 s and 77-85 ms against 3.4-3.7 s and 86-100 ms;
+tanh K = 2 3.5 s and 262 ms against 2.6 s and 293 ms; erf K = 3 3.5 s and 16 ms against
+2.5 s and 21 ms. The option changes how XLA writes its loops, not what they compute, so the
+results agree to rounding (the baselines and the scipy references hold).
+"""
+
+
 RUNNING, DONE, FAILED = 0, 1, 2
 """A seed's status after a piece: steps left to take, the final time reached, the solve failed."""
 
@@ -122,8 +137,13 @@ FIRST_STEP = 1e-6
 """A solve's first step, as a fraction of its time range (the controller then grows it by at most 10x a step)."""
 
 
-def start_carry(t0: Array, y0: PyTree, t1: Array) -> Carry:
-    """The carry before the first piece of a solve from ``t0`` to ``t1``. Traceable.
+def start_carry(t0: np.ndarray, y0: PyTree, t1: np.ndarray) -> Carry:
+    """The carry before the first piece of solves from ``t0`` to ``t1``, as host (numpy) arrays.
+
+    Element-wise, so one call makes every seed's carry (``t0``, ``t1`` of shape ``[S]``, the
+    leaves of ``y0`` ``[S, ...]``). Built on the host, not in a compiled program: the pieces'
+    jit places host arrays on the devices as it splits the seeds, where arrays already on one
+    device would first be resharded (a small program compiled for each argument's shape).
 
     The first step is :data:`FIRST_STEP` of the range. The usual automatic choice (Hairer,
     Norsett & Wanner, Solving ODEs I, section II.4) costs two evaluations of the right-hand
@@ -133,12 +153,13 @@ def start_carry(t0: Array, y0: PyTree, t1: Array) -> Carry:
     seed's solve takes 89-102 steps, against 86-103 with the estimate, and every step is held
     to the same tolerance either way.
     """
-    t0 = jnp.asarray(t0, jnp.float64)
-    one = jnp.ones_like(t0)
-    first_end = t0 + FIRST_STEP * (jnp.asarray(t1, jnp.float64) - t0)
+    t0 = np.asarray(t0, np.float64)
+    y0 = jax.tree_util.tree_map(lambda leaf: np.asarray(leaf, np.float64), y0)
+    one = np.ones_like(t0)
+    first_end = t0 + FIRST_STEP * (np.asarray(t1, np.float64) - t0)
     return Carry(
-        t0, y0, ((one, one, jnp.zeros_like(t0, dtype=bool)), first_end),
-        (jnp.ones_like(t0, dtype=bool), jax.tree_util.tree_map(jnp.zeros_like, y0)),
+        t0, y0, ((one, one, np.zeros_like(t0, dtype=bool)), first_end),
+        (np.ones_like(t0, dtype=bool), jax.tree_util.tree_map(np.zeros_like, y0)),
     )
 
 
@@ -197,6 +218,8 @@ def integrate_piece(
         ),
         stepsize_controller=controller, solver_state=carry.solver, controller_state=carry.controller,
         made_jump=False, max_steps=steps, throw=False,
+        # nothing differentiates a piece: the forward-only loop traces its body once, not twice (~0.2 s)
+        adjoint=diffrax.ForwardMode(),
     )
     going_on = solution.result == diffrax.RESULTS.max_steps_reached
     ok = finite & ((solution.result == diffrax.RESULTS.successful) | going_on)
