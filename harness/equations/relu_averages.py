@@ -103,15 +103,22 @@ def _arc_cosine1(rho: Array) -> Array:
     return rho * _orthant2(rho) + _INV_2PI * _sqrt_one_minus_square(rho)
 
 
-def _select(matrix: Array, rows: np.ndarray, cols: np.ndarray) -> Array:
-    """matrix[rows, cols] for static index arrays, as a product with a one-hot matrix.
+def _select(matrix: Array, *requests: tuple[np.ndarray, ...]) -> list[Array]:
+    """``[matrix[request] for request in requests]``, each a tuple of static index arrays, as one dot.
 
     XLA on CPU fuses a gather with the elementwise work around it badly (measured: a
-    225-entry gather at the end of I4 tripled its cost); a dot is never fused that way.
+    225-entry gather at the end of I4 tripled its cost); a product with a one-hot matrix is
+    never fused that way. One product for all the requests rather than one each: XLA compiles
+    every dot as a kernel of its own (20-60 ms each), and the four-variable average alone
+    makes thirteen selections.
     """
-    onehot = np.zeros((matrix.size, rows.size), np.float64)
-    onehot[np.ravel_multi_index((rows.ravel(), cols.ravel()), matrix.shape), np.arange(rows.size)] = 1.0
-    return (matrix.reshape(-1) @ jnp.asarray(onehot, matrix.dtype)).reshape(rows.shape)
+    sizes = [request[0].size for request in requests]
+    onehot = np.zeros((matrix.size, sum(sizes)), np.float64)
+    for start, request in zip(np.cumsum([0, *sizes[:-1]]), requests, strict=True):
+        flat = np.ravel_multi_index(tuple(index.ravel() for index in request), matrix.shape)
+        onehot[flat, start + np.arange(request[0].size)] = 1.0
+    picked = jnp.split(matrix.reshape(-1) @ jnp.asarray(onehot, matrix.dtype), np.cumsum(sizes)[:-1])
+    return [part.reshape(request[0].shape) for part, request in zip(picked, requests, strict=True)]
 
 
 def _safe_divide(numerator: Array, denominator: Array) -> Array:
@@ -195,7 +202,7 @@ def _tables(K: int, P: int) -> _Tables:
 def _three_variable_cross(R: Array, cdq: np.ndarray) -> Array:
     """E[y_c y_d theta_c theta_d theta_q], c != d (module docstring)."""
     c, d, q = cdq.T
-    r_cd, r_cq, r_dq = _select(R, c, d), _select(R, c, q), _select(R, d, q)
+    r_cd, r_cq, r_dq = _select(R, (c, d), (c, q), (d, q))
     p3 = 0.125 + _INV_4PI * (_asin(r_cd) + _asin(r_cq) + _asin(r_dq))
     return r_cd * p3 + _INV_4PI * (
         _sqrt_one_minus_square(r_cd) + r_cq * _sqrt_one_minus_square(r_dq) + r_dq * _sqrt_one_minus_square(r_cq)
@@ -205,7 +212,7 @@ def _three_variable_cross(R: Array, cdq: np.ndarray) -> Array:
 def _three_variable_square(R: Array, cbq: np.ndarray) -> Array:
     """E[y_c^2 theta_c theta_b theta_q] (module docstring)."""
     c, b, q = cbq.T
-    r_cb, r_cq, r_bq = _select(R, c, b), _select(R, c, q), _select(R, b, q)
+    r_cb, r_cq, r_bq = _select(R, (c, b), (c, q), (b, q))
     p3 = 0.125 + _INV_4PI * (_asin(r_cb) + _asin(r_cq) + _asin(r_bq))
     numerator = 2.0 * r_cb * r_cq - r_bq * (r_cb**2 + r_cq**2)
     return p3 + _INV_4PI * (
@@ -235,7 +242,7 @@ _MOMENTS = np.array([(3, 0, 2), (2, 0, 3), (3, 1, 2), (2, 1, 3)])
 
 
 def _pick(values: Array, pairs: np.ndarray) -> Array:
-    """values[:, pairs, :] for values [n, 6, m] and static pair indices, as a dot (see _select)."""
+    """values[:, pairs, :] for values [n, 6, m] and static pair indices, as one dot (see _select)."""
     onehot = np.zeros((6, pairs.size))
     onehot[pairs.ravel(), np.arange(pairs.size)] = 1.0
     return jnp.einsum("npm,pq->nqm", values, jnp.asarray(onehot, values.dtype))
@@ -251,18 +258,25 @@ def _four_variable(R: Array, klcd: np.ndarray, nodes: int) -> Array:
     """
     t, weights = (jnp.asarray(a, R.dtype) for a in _path_rule(nodes))
 
-    def endpoint(first: np.ndarray, second: np.ndarray) -> Array:
-        """R between the roles ``first`` and ``second`` (static arrays of positions), [n, ...]."""
-        rows = klcd[:, first.ravel()].reshape((-1,) + first.shape)
-        cols = klcd[:, second.ravel()].reshape((-1,) + second.shape)
-        return _select(R, rows, cols)
+    def roles(first: np.ndarray, second: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The indices into R between the roles ``first`` and ``second`` (static arrays of positions)."""
+        return tuple(klcd[:, role.ravel()].reshape((-1,) + role.shape) for role in (first, second))
 
     i, j = _PAIRS.T
     a, b = _COMPLEMENTS.T
+    # (k, c), (k, d), (l, c), (l, d): phi0 E[y_target theta | y_given = 0], Stein once more (below)
+    target, given, partner = _MOMENTS.T
+    others = np.array([[v for v in range(4) if v not in (tg, gv)] for tg, gv in zip(target, given, strict=True)])
+    # every entry of R the average needs, in one selection: [n, ...] each
+    (
+        ends_ij, r_ai, r_aj, r_bi, r_bj, r_ab, r_tg, r_to0, r_go0, r_to1, r_go1, coefficients, r_cd
+    ) = _select(R, *(roles(x, y) for x, y in (
+        (i, j), (a, i), (a, j), (b, i), (b, j), (a, b), (target, given),
+        (target, others[:, 0]), (given, others[:, 0]), (target, others[:, 1]), (given, others[:, 1]),
+        (given, partner), (np.array(2), np.array(3)),
+    )))
     at = lambda x: x[..., None] * t  # noqa: E731 - R(t) = I + t (R - I) off the diagonal
-    r_ij, r_ai, r_aj, r_bi, r_bj, r_ab = (
-        at(endpoint(x, y)) for x, y in ((i, j), (a, i), (a, j), (b, i), (b, j), (a, b))
-    )
+    r_ij, r_ai, r_aj, r_bi, r_bj, r_ab = (at(x) for x in (ends_ij, r_ai, r_aj, r_bi, r_bj, r_ab))
     one_minus = 1.0 - r_ij**2
     n_ab = r_ab * one_minus - (r_ai * r_bi + r_aj * r_bj) + r_ij * (r_ai * r_bj + r_aj * r_bi)
     n_aa = one_minus - (r_ai**2 + r_aj**2) + 2.0 * r_ij * r_ai * r_aj
@@ -271,7 +285,7 @@ def _four_variable(R: Array, klcd: np.ndarray, nodes: int) -> Array:
     partial = _safe_divide(n_ab, root)  # r_{ab|ij}
     orthant = _orthant2(partial)  # P(y_a > 0, y_b > 0 | y_i = y_j = 0)
     density = _INV_2PI / jnp.sqrt(one_minus)  # of (y_i, y_j) at 0
-    ends_ij = endpoint(i, j)[..., None]
+    ends_ij = ends_ij[..., None]
     orthant_rate = jnp.sum(ends_ij * density * orthant, axis=1)  # dP_4/dt
 
     # (k, l): the conditional arc-cosine kernel of (c, d) given (k, l); pair 0 is (k, l).
@@ -280,21 +294,18 @@ def _four_variable(R: Array, klcd: np.ndarray, nodes: int) -> Array:
         ends_ij[:, pair_kl] * density[:, pair_kl] * root[:, pair_kl] / one_minus[:, pair_kl]
         * _arc_cosine1(partial[:, pair_kl])
     )
-    # (k, c), (k, d), (l, c), (l, d): phi0 E[y_target theta | y_given = 0], Stein once more.
-    target, given, partner = _MOMENTS.T
-    others = np.array([[v for v in range(4) if v not in (tg, gv)] for tg, gv in zip(target, given, strict=True)])
-    r_tg = at(endpoint(target, given))
-    own_pair = np.array([_PAIR_INDEX[(g, t_)] for t_, g in zip(target, given, strict=True)])
-    moment = _sqrt_one_minus_square(r_tg) * _pick(orthant, own_pair)
-    for column in range(2):
-        other = others[:, column]
-        r_to, r_go = at(endpoint(target, other)), at(endpoint(given, other))
-        pairs = np.array([_PAIR_INDEX[(g, o)] for g, o in zip(given, other, strict=True)])
-        moment = moment + (r_to - r_tg * r_go) / _sqrt_one_minus_square(r_go) * _pick(orthant, pairs)
-    coefficients = endpoint(given, partner)[..., None]
-    integrand = integrand + _PHI0**2 * jnp.sum(coefficients * moment, axis=1)
+    # (k, c), (k, d), (l, c), (l, d)
+    own_pair = [_PAIR_INDEX[(g, t_)] for t_, g in zip(target, given, strict=True)]
+    other_pairs = [[_PAIR_INDEX[(g, o)] for g, o in zip(given, others[:, column], strict=True)] for column in (0, 1)]
+    picked = _pick(orthant, np.array(own_pair + other_pairs[0] + other_pairs[1]))
+    orthant_own, orthant_other0, orthant_other1 = jnp.split(picked, 3, axis=1)
+    r_tg = at(r_tg)
+    moment = _sqrt_one_minus_square(r_tg) * orthant_own
+    for r_to, r_go, orthant_other in ((r_to0, r_go0, orthant_other0), (r_to1, r_go1, orthant_other1)):
+        r_to, r_go = at(r_to), at(r_go)
+        moment = moment + (r_to - r_tg * r_go) / _sqrt_one_minus_square(r_go) * orthant_other
+    integrand = integrand + _PHI0**2 * jnp.sum(coefficients[..., None] * moment, axis=1)
     # (c, d): int_0^1 P_4(R(t)) dt = 1/16 + int_0^1 (1 - t) dP_4/dt dt.
-    r_cd = endpoint(np.array(2), np.array(3))
     integrand = integrand + r_cd[:, None] * (1.0 - t) * orthant_rate
     return 1.0 / (8.0 * math.pi) + r_cd / 16.0 + jnp.sum(weights * integrand, axis=-1)
 
@@ -341,7 +352,9 @@ def relu_averages(cov: Array, K: int, outputs: tuple[str, ...], path_nodes: int 
             values.append(_four_variable(R, tables.four, path_nodes))
         k, l, c, d = np.concatenate(scales).T
         # s_c s_d, and 0 if a truncated variable has zero variance (module docstring).
-        value = jnp.concatenate(values) * _select(jnp.outer(s, s), c, d) * _select(jnp.outer(mask, mask), k, l)
+        scales_and_masks = jnp.stack([jnp.outer(s, s), jnp.outer(mask, mask)])
+        scale, truncated = _select(scales_and_masks, (np.zeros_like(c), c, d), (np.ones_like(k), k, l))
+        value = jnp.concatenate(values) * scale * truncated
         expand = np.zeros((tables.index.size, value.shape[0]))
         expand[np.arange(tables.index.size), tables.index.ravel()] = 1.0
         out["I4"] = (jnp.asarray(expand, dtype) @ value).reshape(tables.index.shape)
