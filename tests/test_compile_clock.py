@@ -8,6 +8,7 @@ import numpy as np
 
 from harness.core import scenario as sc
 from harness.equations import iid as iid_theory
+from harness.equations.ode_solve import start_carry
 from harness.runner.compile_clock import CompileClock, _union_length
 
 
@@ -61,9 +62,7 @@ def test_the_solver_program_has_no_host_callback_so_the_persistent_cache_keeps_i
     dyn, start = _dyn_and_start()
     static, rates = iid_theory.split_rates(dyn)
     piece = iid_theory._compiled_piece(static, 1e-6, 1e-8, 16)
-    carry = iid_theory._compiled_start(1)(
-        jnp.zeros(1), tuple(jnp.asarray(x) for x in (start.Q, start.R, start.v)), jnp.ones(1)
-    )
+    carry = start_carry(np.zeros(1), (start.Q, start.R, start.v), np.ones(1))
     times = jnp.linspace(0.0, 1.0, 3)
     args = (times, jnp.asarray(rates), carry, jnp.asarray(start.T), jnp.ones((1, 2)))
     text = piece.lower(*args).as_text()
